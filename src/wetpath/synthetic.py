@@ -114,7 +114,15 @@ def cap_on_plate(radius: float, theta_w_deg: float, *, normal=(1, 0, 0), pad: in
     """
     theta = math.radians(theta_w_deg)
     n = unit(normal)
-    z, y, x = _centred_grid(_cube(radius + pad), _offset(offset, seed))
+    off = _offset(offset, seed)
+    axis = np.flatnonzero(np.abs(n) > 1 - 1e-12)
+    if axis.size:
+        # An axis-aligned plate labelled by voxel centres sits on a voxel face: put the exact plane
+        # there (half-integer height), so the closed form describes the voxelised body.
+        k = int(axis[0])
+        plane = off[k] - n[k] * radius * math.cos(theta)
+        off[k] += (math.floor(plane) + 0.5) - plane
+    z, y, x = _centred_grid(_cube(radius + pad), off)
     # height above the plate; the sphere centre (grid origin) is at height R cos θ_w
     h = n[0] * z + n[1] * y + n[2] * x + radius * math.cos(theta)
     r2 = z * z + y * y + x * x
