@@ -36,7 +36,8 @@ class Volume:
 
     def __init__(self, path: Path, shape: tuple[int, int, int], dtype: np.dtype, reader,
                  closer=None):
-        self.path, self.shape, self.dtype = path, tuple(int(n) for n in shape), np.dtype(dtype)
+        self.path, self.shape = path, tuple(int(n) for n in shape)
+        self.dtype = np.dtype(dtype).newbyteorder("=")  # what read() returns
         self._reader, self._closer = reader, closer
 
     ndim = 3
