@@ -1,4 +1,4 @@
-"""Summaries: exact counts, chunk invariance, undefined fractions flagged, joining per-step tables."""
+"""Summaries: exact counts, chunk invariance, undefined fractions flagged, joined step tables."""
 
 from __future__ import annotations
 

@@ -158,7 +158,10 @@ def _add_run(p):
     p.add_argument("--cores", type=int, default=2, help="cores Snakemake may use (default 2)")
     p.add_argument("--profile", help="Snakemake profile folder (e.g. a cluster profile)")
     p.add_argument("--directory", type=Path, default=Path("."),
-                   help="checkout holding the Snakefile (default: current folder)")
+                   help="working folder: relative paths of the config and results/ are in it "
+                        "(default: current folder)")
+    p.add_argument("--snakefile", type=Path,
+                   help="the workflow's Snakefile (default: Snakefile in --directory)")
     p.add_argument("-n", "--dry-run", action="store_true", help="only show what would run")
     p.add_argument("snakemake_args", nargs=argparse.REMAINDER,
                    help="further Snakemake options after --")
@@ -171,9 +174,9 @@ def _cmd_run(args) -> int:
     import yaml
 
     workdir = args.directory.resolve()
-    snakefile = workdir / "Snakefile"
+    snakefile = (args.snakefile or workdir / "Snakefile").resolve()
     if not snakefile.is_file():
-        raise WetpathError("no Snakefile here; run from a wetpath checkout or give --directory",
+        raise WetpathError("no Snakefile here; run in a wetpath checkout or give --snakefile",
                            step="run", path=snakefile)
     configfile = args.configfile if args.configfile.is_absolute() else Path.cwd() / args.configfile
     if not configfile.is_file():
