@@ -1,0 +1,83 @@
+"""Shared helpers: tiny label series on disk, file fingerprints, Snakemake runs in a subprocess."""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import re
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+import tifffile
+
+from wetpath.synthetic import random_medium
+
+REPO = Path(__file__).resolve().parents[1]
+SRC = REPO / "src"
+
+
+def fingerprint(path: Path) -> tuple[int, str]:
+    """(mtime_ns, sha256) of a file: to show that an input was left untouched."""
+    return path.stat().st_mtime_ns, hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+def series_labels(n_steps: int = 3, shape=(24, 24, 24), seed: int = 1) -> list[np.ndarray]:
+    """Invented test series: one random medium, wetting saturation rising step by step."""
+    return [random_medium(shape, cylinder_fov=True, seed=seed, saturation_w=0.3 + 0.15 * i)
+            for i in range(n_steps)]
+
+
+def write_series(folder: Path, volumes, *, start: int = 0) -> Path:
+    """Write volumes as step_NNN.tif plus times.csv (step,time_s,file) in ``folder``."""
+    folder.mkdir(parents=True, exist_ok=True)
+    times = folder / "times.csv"
+    rows = [] if times.exists() else ["step,time_s,file"]
+    for i, vol in enumerate(volumes, start=start):
+        tifffile.imwrite(folder / f"step_{i:03d}.tif", vol)
+        rows.append(f"step_{i:03d},{60.0 * i:g},step_{i:03d}.tif")
+    with open(times, "a") as fh:
+        fh.write("\n".join(rows) + "\n")
+    return folder
+
+
+def subprocess_env(src: Path = SRC) -> dict:
+    """Environment in which `python -m wetpath` runs the given source tree without installation."""
+    env = dict(os.environ)
+    env["PYTHONPATH"] = str(src)
+    env["PATH"] = os.pathsep.join([str(Path(sys.executable).parent), env.get("PATH", "")])
+    return env
+
+
+def snakemake(workdir: Path, *args: str, src: Path = SRC, configfile: str = "config.yaml",
+              check: bool = True, cores: int = 2) -> subprocess.CompletedProcess:
+    cmd = [sys.executable, "-m", "snakemake", "--snakefile", str(REPO / "Snakefile"),
+           "--directory", str(workdir), "--configfile", str(workdir / configfile),
+           "--cores", str(cores), *args]
+    out = subprocess.run(cmd, env=subprocess_env(src), capture_output=True, text=True,
+                         cwd=workdir)
+    if check and out.returncode != 0:
+        raise AssertionError(f"snakemake failed:\n{out.stdout[-3000:]}\n{out.stderr[-3000:]}")
+    return out
+
+
+def planned_jobs(output: str) -> set[tuple[str, str | None]]:
+    """(rule, step) pairs of a `snakemake -n` listing (step None for rules without one)."""
+    jobs, rule, step = set(), None, None
+    for line in output.splitlines() + ["rule end:"]:
+        m = re.match(r"^(?:local)?rule (\w+):", line)
+        if m:
+            if rule is not None:
+                jobs.add((rule, step))
+            rule, step = m.group(1), None
+        w = re.search(r"wildcards: .*step=([\w.-]+)", line)
+        if w:
+            step = w.group(1)
+    return jobs
+
+
+@pytest.fixture
+def tiny_volume() -> np.ndarray:
+    return random_medium((24, 24, 24), cylinder_fov=True, seed=7)

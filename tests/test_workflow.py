@@ -1,0 +1,166 @@
+"""The Snakemake workflow for real on a tiny series (3 steps of 24³) in a temporary folder.
+
+A module fixture runs the workflow once (with a private copy of the package sources on PYTHONPATH,
+so a test can edit "the code"); each scheduling test copies that finished folder and asks Snakemake
+for a dry run.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import time
+
+import numpy as np
+import pandas as pd
+import pytest
+import tifffile
+
+from .conftest import (
+    REPO,
+    SRC,
+    planned_jobs,
+    series_labels,
+    snakemake,
+    subprocess_env,
+    write_series,
+)
+
+pytestmark = [pytest.mark.workflow, pytest.mark.xdist_group("workflow")]
+
+CONFIG = "series:\n  tiny:\n    input: data\n    voxel_size_um: 2.5\n    chunks: 16\n"
+
+
+def _prepare(folder, volumes=None):
+    write_series(folder / "data", series_labels() if volumes is None else volumes)
+    (folder / "config.yaml").write_text(CONFIG)
+    shutil.copytree(SRC, folder / "src", ignore=shutil.ignore_patterns("__pycache__"))
+    return folder
+
+
+@pytest.fixture(scope="module")
+def finished(tmp_path_factory):
+    folder = _prepare(tmp_path_factory.mktemp("wf"))
+    snakemake(folder, src=folder / "src")
+    return folder
+
+
+def _copy(finished, tmp_path):
+    dest = tmp_path / "wf"
+    shutil.copytree(finished, dest, symlinks=True)  # copy2 keeps modification times
+    return dest
+
+
+def test_states_match_direct_numpy_counts(finished):
+    states = pd.read_csv(finished / "results" / "tiny" / "states.csv")
+    assert list(states["step"]) == ["step_000", "step_001", "step_002"]
+    assert list(states["time_s"]) == [0.0, 60.0, 120.0]
+    for row, labels in zip(states.itertuples(), series_labels(), strict=True):
+        n = np.bincount(labels.ravel(), minlength=4)  # direct count on the written labels
+        assert row.porosity == pytest.approx((n[2] + n[3]) / n[1:].sum(), abs=0, rel=1e-15)
+        assert row.saturation_w == pytest.approx(n[2] / (n[2] + n[3]), abs=0, rel=1e-15)
+        assert row.voxel_size_um == 2.5
+        assert len(row.source_sha256) == 64 and row.wetpath_version
+    assert (finished / "results" / "tiny" / "steps" / "step_001.zarr" / "zarr.json").exists()
+    for log in ("ingest/step_000.log", "summarise/step_002.log", "states.log"):
+        assert (finished / "results" / "tiny" / "logs" / log).exists()
+
+
+def test_nothing_to_do_after_a_complete_run(finished, tmp_path):
+    wf = _copy(finished, tmp_path)
+    assert planned_jobs(snakemake(wf, "-n", src=wf / "src").stdout) == set()
+
+
+def test_changed_input_reruns_only_its_step(finished, tmp_path):
+    wf = _copy(finished, tmp_path)
+    changed = series_labels()[1]
+    changed[changed == 2] = 3
+    tifffile.imwrite(wf / "data" / "step_001.tif", changed)
+    jobs = planned_jobs(snakemake(wf, "-n", src=wf / "src").stdout)
+    assert jobs == {("ingest", "step_001"), ("summarise", "step_001"), ("states", None),
+                    ("all", None)}
+
+
+def test_per_step_setting_reruns_only_that_step(finished, tmp_path):
+    wf = _copy(finished, tmp_path)
+    (wf / "config.yaml").write_text(CONFIG + "    steps:\n      step_002:\n        chunks: 8\n")
+    jobs = planned_jobs(snakemake(wf, "-n", src=wf / "src").stdout)
+    assert jobs == {("ingest", "step_002"), ("summarise", "step_002"), ("states", None),
+                    ("all", None)}
+
+
+def test_appended_scan_processes_only_the_new_step(finished, tmp_path):
+    wf = _copy(finished, tmp_path)
+    extra = series_labels(n_steps=4)[3]
+    write_series(wf / "data", [extra], start=3)
+    jobs = planned_jobs(snakemake(wf, "-n", src=wf / "src").stdout)
+    assert jobs == {("ingest", "step_003"), ("summarise", "step_003"), ("states", None),
+                    ("all", None)}
+
+
+def test_code_change_reruns_every_rule(finished, tmp_path):
+    wf = _copy(finished, tmp_path)
+    with open(wf / "src" / "wetpath" / "_summary.py", "a") as fh:
+        fh.write("\n# an edit of the package code\n")
+    out = snakemake(wf, "-n", src=wf / "src").stdout
+    jobs = planned_jobs(out)
+    steps = ("step_000", "step_001", "step_002")
+    assert {("ingest", s) for s in steps} | {("summarise", s) for s in steps} <= jobs
+    assert ("states", None) in jobs
+    assert "Params have changed" in out or "params" in out.lower()
+
+
+@pytest.mark.parametrize(("config", "key"), [
+    (CONFIG.replace("2.5", "-1"), "voxel_size_um"),
+    (CONFIG.replace("2.5", ".nan"), "series.tiny.voxel_size_um"),
+    (CONFIG.replace("input: data", "input: nowhere"), "times.csv"),
+    (CONFIG + "    colour: red\n", "colour"),
+    (CONFIG.replace("chunks: 16", "chunks: many"), "chunks"),
+])
+def test_bad_config_fails_before_any_job(tmp_path, config, key):
+    write_series(tmp_path / "data", [np.ones((6, 6, 6), np.uint8)] * 2)
+    (tmp_path / "config.yaml").write_text(config)
+    out = snakemake(tmp_path, "--cores", "1", check=False)
+    assert out.returncode != 0
+    assert key in out.stdout + out.stderr
+    assert not (tmp_path / "results").exists()
+
+
+def test_bad_label_file_fails_its_job_with_a_one_line_log(tmp_path):
+    vols = series_labels(n_steps=2)
+    vols[1] = vols[1].copy()
+    vols[1][0, 0, :5] = 9
+    write_series(tmp_path / "data", vols)
+    (tmp_path / "config.yaml").write_text(CONFIG)
+    out = snakemake(tmp_path, "--keep-going", check=False)
+    assert out.returncode != 0
+    log = (tmp_path / "results/tiny/logs/ingest/step_001.log").read_text().strip().splitlines()
+    assert log == ["wetpath ingest: error: ingest step_001: data/step_001.tif: unexpected label "
+                   "values 9 (5 voxels); known codes are 0=excluded, 1=solid, 2=wetting, "
+                   "3=nonwetting"]
+    assert not (tmp_path / "results/tiny/steps/step_001.zarr").exists()
+    assert (tmp_path / "results/tiny/steps/step_000.zarr").exists()
+    assert not list((tmp_path / "results/tiny/steps").glob(".*tmp*"))
+
+
+def test_interrupted_run_completes_with_identical_tables(finished, tmp_path):
+    wf = _prepare(tmp_path / "killed")
+    cmd = [sys.executable, "-m", "snakemake", "--snakefile", str(REPO / "Snakefile"),
+           "--directory", str(wf), "--configfile", str(wf / "config.yaml"), "--cores", "1"]
+    proc = subprocess.Popen(cmd, env=subprocess_env(wf / "src"), stdout=subprocess.DEVNULL,
+                            stderr=subprocess.DEVNULL, start_new_session=True)
+    steps = wf / "results" / "tiny" / "steps"
+    deadline = time.time() + 120
+    while time.time() < deadline and not (steps.exists() and any(steps.glob("*.zarr"))):
+        time.sleep(0.05)
+    os.killpg(proc.pid, signal.SIGTERM)  # mid-run: later steps not yet ingested
+    proc.wait(timeout=60)
+    assert not (wf / "results" / "tiny" / "states.csv").exists()
+    snakemake(wf, "--rerun-incomplete", src=wf / "src")
+    for name in ("states.csv", "summaries/step_000.csv", "summaries/step_002.csv"):
+        a = (wf / "results" / "tiny" / name).read_bytes()
+        b = (finished / "results" / "tiny" / name).read_bytes()
+        assert a == b, name
