@@ -4,8 +4,9 @@ Every function takes a history table from :func:`wetpath._history.build_history`
 slices) and an output stem, writes ``<stem>.png`` and ``<stem>.svg`` and returns the two paths.
 Branches are told apart by colour (drainage / imbibition), line style (branch number) and a legend
 entry each; estimators by marker shape, so the figures read without colour too. The palette is our
-own, a blue / orange pair with a dark teal and a purple, chosen to stay apart under the common
-colour-vision deficiencies; phases use grey (solid), blue (wetting) and amber (non-wetting).
+own: a dark blue / orange pair for the branches, five colours of spread lightness (plus hatches)
+for cluster events, grey (solid), blue (wetting) and amber (non-wetting) for phases; each set stays
+apart under simulated protanopia, deuteranopia and tritanopia (tested in ``tests/test_plots.py``).
 
 Figures are built on :class:`matplotlib.figure.Figure` with the Agg canvas, never through pyplot,
 so they are thread-safe and need no display.
@@ -36,8 +37,8 @@ __all__ = [
 ]
 
 BRANCH_COLOURS = {"drainage": "#1f5fa8", "imbibition": "#e07b1f", "static": "#5b5b5b"}
-EVENT_COLOURS = {"n_coalesce": "#1f5fa8", "n_breakup": "#e07b1f", "n_regroup": "#1d7f70",
-                 "n_appear": "#8c4f9f", "n_vanish": "#9a8a1c"}
+EVENT_COLOURS = {"n_coalesce": "#1f5fa8", "n_breakup": "#e07b1f", "n_regroup": "#a8d8f5",
+                 "n_appear": "#231030", "n_vanish": "#f7e98a"}
 EVENT_HATCHES = {"n_coalesce": "", "n_breakup": "//", "n_regroup": "..", "n_appear": "xx",
                  "n_vanish": "\\\\"}
 PHASE_COLOURS = ("#ffffff", "#7a7a7a", "#4a90d9", "#f0b03c")  # excluded, solid, w, n
@@ -289,7 +290,7 @@ def plot_events_vs_time(history: pd.DataFrame, out_stem: str | os.PathLike) -> l
         ok = np.isfinite(t)
         if ok.any() and v.any():
             ax.bar(t[ok], v[ok], width=width, bottom=bottom[ok], color=EVENT_COLOURS[col],
-                   hatch=EVENT_HATCHES[col], edgecolor="white", linewidth=0.5, label=label)
+                   hatch=EVENT_HATCHES[col], edgecolor="#8a8a8a", linewidth=0.5, label=label)
             drawn = True
         bottom += v
     if drawn:
