@@ -20,6 +20,7 @@ from wetpath._plots import (
     PHASE_COLOURS,
     PLOTS,
     _branch_states,
+    mid_plane_slices,
     plot_history,
     plot_phase_slices,
 )
@@ -113,6 +114,18 @@ def test_phase_slice_colours_and_areas(tmp_path):
         plot_phase_slices([("bad", np.full((4, 4), 7, np.uint8))], tmp_path / "x")
     with pytest.raises(WetpathError, match="no slices"):
         plot_phase_slices([], tmp_path / "x")
+
+
+def test_mid_plane_slices():
+    volume = np.arange(3 * 4 * 5).reshape(3, 4, 5)
+    (one,), axes = mid_plane_slices([("v", volume)])
+    assert axes == ("y", "x") and one[0] == "v"
+    np.testing.assert_array_equal(one[1], volume[1])
+    (one,), axes = mid_plane_slices([("v", volume)], axis=2)
+    assert axes == ("z", "y")
+    np.testing.assert_array_equal(one[1], volume[:, :, 2])
+    with pytest.raises(WetpathError, match="not 3D"):
+        mid_plane_slices([("flat", volume[0])])
 
 
 # Colour-vision deficiency simulation: Machado, Oliveira & Fernandes (2009), IEEE Trans. Vis.

@@ -13,6 +13,7 @@ import pytest
 from tube_bundle_series import tube_bundle_path
 
 from wetpath._history import branch_summary, build_history
+from wetpath._plots import mid_plane_slices
 from wetpath._report import flag_warnings, write_report
 from wetpath.synthetic import tube_meniscus
 
@@ -26,19 +27,16 @@ def _load_checker():
     return module
 
 
-def _mid_plane(volume: np.ndarray) -> np.ndarray:
-    return volume[:, volume.shape[1] // 2, :]
-
-
 def _write(tmp_path: Path) -> Path:
     states, increments = tube_bundle_path(jitter=0.3)
     increments.loc[3, "flag_large_step"] = True
     history = build_history(states, increments, sigma_n_per_m=0.025)
     # mid-plane slices through the axis of the widest tube (r = 15 µm = 7.5 voxels of 2 µm)
-    slices = [(f"{label} ({step})", _mid_plane(tube_meniscus(7.5, theta, apex)))
-              for label, step, theta, apex in (("first", "t00", 40, -8),
-                                                ("mid-path", "t10", 65, 6),
-                                                ("last", "t20", 40, 0))]
+    slices, axes = mid_plane_slices(
+        [(f"{label} ({step})", tube_meniscus(7.5, theta, apex))
+         for label, step, theta, apex in (("first", "t00", 40, -8), ("mid-path", "t10", 65, 6),
+                                           ("last", "t20", 40, 0))], axis=1)
+    assert axes == ("z", "x")
     return write_report(
         tmp_path / "report.html", history=history,
         branches=branch_summary(history, n_boot=200), states=states, increments=increments,
@@ -46,7 +44,7 @@ def _write(tmp_path: Path) -> Path:
         provenance={"code_hash": "c0de",
                     "inputs": {"t00.tif": "sha256:aa11", "t01.tif": "sha256:bb22"},
                     "versions": {"wetpath-data": "7"}},
-        warnings=["registration drift <checked>"], slices=slices,
+        warnings=["registration drift <checked>"], slices=slices, slice_axes=axes,
         figures_dir=tmp_path / "figures")
 
 

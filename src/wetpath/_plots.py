@@ -33,7 +33,7 @@ from ._errors import WetpathError
 __all__ = [
     "BRANCH_COLOURS", "PHASE_COLOURS", "plot_angle_vs_saturation", "plot_pc_vs_saturation",
     "plot_area_vs_saturation", "plot_euler_vs_saturation", "plot_angle_vs_time",
-    "plot_events_vs_time", "plot_phase_slices", "plot_history",
+    "plot_events_vs_time", "plot_phase_slices", "plot_history", "mid_plane_slices",
 ]
 
 BRANCH_COLOURS = {"drainage": "#1f5fa8", "imbibition": "#e07b1f", "static": "#5b5b5b"}
@@ -353,6 +353,36 @@ def plot_phase_slices(slices: Sequence[tuple[str, np.ndarray]], out_stem: str | 
     return _save(fig, out_stem)
 
 
+_AXIS_NAMES = ("z", "y", "x")
+
+
+def mid_plane_slices(volumes: Sequence[tuple[str, np.ndarray]], *, axis: int = 0,
+                     ) -> tuple[list[tuple[str, np.ndarray]], tuple[str, str]]:
+    """Middle planes of label volumes across ``axis`` (0 = z) for :func:`plot_phase_slices`.
+
+    Parameters
+    ----------
+    volumes : sequence of (title, 3D array)
+        Label volumes (z, y, x), e.g. the first, a mid-path and the last state.
+    axis : int, default 0
+        The axis the planes are normal to.
+
+    Returns
+    -------
+    (slices, axis_labels)
+        The (title, 2D array) pairs and the names of the rows and columns of the planes
+        (("y", "x") for axis 0).
+    """
+    out = []
+    for title, volume in volumes:
+        volume = np.asarray(volume)
+        if volume.ndim != 3:
+            raise WetpathError(f"volume {title!r} is not 3D (shape {volume.shape})", step="plots")
+        out.append((title, np.take(volume, volume.shape[axis] // 2, axis=axis)))
+    rest = [name for k, name in enumerate(_AXIS_NAMES) if k != axis]
+    return out, (rest[0], rest[1])
+
+
 PLOTS = {
     "angle_vs_saturation": plot_angle_vs_saturation,
     "pc_vs_saturation": plot_pc_vs_saturation,
@@ -365,8 +395,12 @@ PLOTS = {
 
 def plot_history(history: pd.DataFrame, out_dir: str | os.PathLike, *,
                  slices: Sequence[tuple[str, np.ndarray]] | None = None,
-                 voxel_size_um: float | None = None) -> dict[str, list[Path]]:
+                 voxel_size_um: float | None = None,
+                 slice_axes: tuple[str, str] = ("y", "x")) -> dict[str, list[Path]]:
     """Write every history figure (and the phase slices when given) into ``out_dir``.
+
+    ``slices``, ``voxel_size_um`` and ``slice_axes`` go to :func:`plot_phase_slices` (as its
+    ``axis_labels``).
 
     Returns a mapping from figure name (``angle_vs_saturation``, ``pc_vs_saturation``,
     ``a_nw_vs_saturation``, ``euler_vs_saturation``, ``angle_vs_time``, ``events_vs_time``,
@@ -376,5 +410,6 @@ def plot_history(history: pd.DataFrame, out_dir: str | os.PathLike, *,
     written = {name: func(history, out / name) for name, func in PLOTS.items()}
     if slices:
         written["phase_slices"] = plot_phase_slices(slices, out / "phase_slices",
-                                                    voxel_size_um=voxel_size_um)
+                                                    voxel_size_um=voxel_size_um,
+                                                    axis_labels=slice_axes)
     return written

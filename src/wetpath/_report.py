@@ -227,7 +227,8 @@ def write_report(out_html: str | os.PathLike, *, history: pd.DataFrame, branches
                  states: pd.DataFrame, increments: pd.DataFrame, config: Mapping,
                  provenance: Mapping, warnings: Iterable[str] = (),
                  slices: Sequence[tuple[str, np.ndarray]] | None = None,
-                 figures_dir: str | os.PathLike, title: str | None = None) -> Path:
+                 figures_dir: str | os.PathLike, title: str | None = None,
+                 slice_axes: tuple[str, str] = ("y", "x")) -> Path:
     """Write the self-contained HTML report of one series.
 
     Parameters
@@ -246,11 +247,14 @@ def write_report(out_html: str | os.PathLike, *, history: pd.DataFrame, branches
     warnings : iterable of str
         Further warnings to list before the flagged increments.
     slices : sequence of (title, 2D array), optional
-        Phase-code slices (e.g. the mid-plane of the first, a mid-path and the last state).
+        Phase-code slices (e.g. the mid-plane of the first, a mid-path and the last state, from
+        :func:`wetpath._plots.mid_plane_slices`).
     figures_dir : path
         Where the PNG and SVG figures are written (the PNGs are embedded in the report).
     title : str, optional
         Page title; defaults to the ``series`` or ``name`` entry of ``config``.
+    slice_axes : (str, str), default ("y", "x")
+        Names of the slices' row and column axes (("y", "x") for z planes).
 
     Returns
     -------
@@ -258,7 +262,7 @@ def write_report(out_html: str | os.PathLike, *, history: pd.DataFrame, branches
         The report path.
     """
     voxel = states["voxel_size_um"].dropna() if "voxel_size_um" in states.columns else []
-    figs = plot_history(history, figures_dir, slices=slices,
+    figs = plot_history(history, figures_dir, slices=slices, slice_axes=slice_axes,
                         voxel_size_um=float(voxel.iloc[0]) if len(voxel) else None)
     title = title or str(config.get("series") or config.get("name") or "saturation path")
     all_warnings = [*map(str, warnings), *flag_warnings(increments)]
