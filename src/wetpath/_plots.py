@@ -114,6 +114,22 @@ def _branch_handles(history: pd.DataFrame) -> list[Line2D]:
             for b, k in _branches(history)]
 
 
+_ESTIMATOR_LABELS = {"energy": "energy balance (per increment)",
+                     "topological": "topological (per state)",
+                     "geometric": "geometric median (per state)"}
+
+
+def _angle_legend(fig: Figure, ax, history: pd.DataFrame, drawn: set[str]) -> None:
+    """Legend below the axes: the branches, then the estimators actually drawn."""
+    if not drawn:
+        _no_data(ax, "contact angle")
+    handles = _branch_handles(history) + [
+        Line2D([], [], color="black", marker=MARKERS[name], linestyle="none",
+               mfc="black" if name == "energy" else "white", label=label)
+        for name, label in _ESTIMATOR_LABELS.items() if name in drawn]
+    fig.legend(handles=handles, loc="outside lower center", ncols=3, fontsize=8)
+
+
 def _no_data(ax, what: str) -> None:
     ax.text(0.5, 0.5, f"no {what} in this series", ha="center", va="center",
             transform=ax.transAxes, color="#5b5b5b")
@@ -146,10 +162,10 @@ def plot_angle_vs_saturation(history: pd.DataFrame, out_stem: str | os.PathLike)
     its interval, at the mean S_w of the increment), topological angle of each state (triangles,
     with its interval) and the geometric median (squares) when present; one colour and line
     style per branch. Returns the PNG and SVG paths."""
-    fig = _new_figure(6.8, 4.6)
+    fig = _new_figure(6.8, 5.0)
     ax = fig.add_subplot()
     inc = _rows(history, "increment")
-    any_data = False
+    drawn: set[str] = set()
     for b, kind in _branches(history):
         st = _style(b, kind)
         rows = inc[inc["branch"] == b]
@@ -161,8 +177,9 @@ def plot_angle_vs_saturation(history: pd.DataFrame, out_stem: str | os.PathLike)
                                                                           hi - y, 0)])
             ax.errorbar(x[ok], y[ok], yerr=err[:, ok], marker=MARKERS["energy"], markersize=5,
                         capsize=2, elinewidth=0.8, **st)
-            any_data = True
-        rows = _branch_states(history, b)
+            drawn.add("energy")
+        rows = _rows(history, "state")
+        rows = rows[rows["branch"] == b]  # markers only: each state drawn once
         x = _values(rows, "saturation_w")
         for name, col in (("topological", "theta_topo_deg"),
                           ("geometric", "theta_geom_median_deg")):
@@ -177,19 +194,8 @@ def plot_angle_vs_saturation(history: pd.DataFrame, out_stem: str | os.PathLike)
                     kw["yerr"] = np.vstack([y - lo, hi - y])[:, ok]
             ax.errorbar(x[ok], y[ok], marker=MARKERS[name], markersize=5, mfc="white",
                         capsize=2, elinewidth=0.8, color=st["color"], linestyle="none", **kw)
-            any_data = True
-    if not any_data:
-        _no_data(ax, "contact angle")
-    handles = _branch_handles(history) + [
-        Line2D([], [], color="black", marker=MARKERS["energy"], linestyle="none",
-               label="energy balance (per increment)"),
-        Line2D([], [], color="black", marker=MARKERS["topological"], mfc="white",
-               linestyle="none", label="topological (per state)"),
-    ]
-    if np.isfinite(_values(history, "theta_geom_median_deg")).any():
-        handles.append(Line2D([], [], color="black", marker=MARKERS["geometric"], mfc="white",
-                              linestyle="none", label="geometric median (per state)"))
-    ax.legend(handles=handles, loc="best", fontsize=8)
+            drawn.add(name)
+    _angle_legend(fig, ax, history, drawn)
     ax.set_xlabel("wetting saturation S_w [–]")
     ax.set_ylabel("effective contact angle θ_w [°]")
     ax.set_title("Effective contact angle along the saturation path")
@@ -240,30 +246,24 @@ def _shade_branches(ax, history: pd.DataFrame) -> None:
 def plot_angle_vs_time(history: pd.DataFrame, out_stem: str | os.PathLike) -> list[Path]:
     """Energy-balance angle of each increment (at the time of its end state) and topological
     angle of each state against time [s], branch spans tinted. Returns the PNG and SVG paths."""
-    fig = _new_figure(6.8, 4.2)
+    fig = _new_figure(6.8, 4.6)
     ax = fig.add_subplot()
     _shade_branches(ax, history)
-    any_data = False
+    drawn: set[str] = set()
     for b, kind in _branches(history):
         st = _style(b, kind)
         rows = history[history["branch"] == b]
-        for record, col, marker in (("increment", "theta_energy_deg", MARKERS["energy"]),
-                                    ("state", "theta_topo_deg", MARKERS["topological"])):
+        for record, col, name in (("increment", "theta_energy_deg", "energy"),
+                                  ("state", "theta_topo_deg", "topological")):
             r = rows[rows["record"] == record]
             t, y = _values(r, "time_s"), _values(r, col)
             ok = np.isfinite(t) & np.isfinite(y)
             if ok.any():
-                ax.plot(t[ok], y[ok], marker=marker, markersize=5,
+                ax.plot(t[ok], y[ok], marker=MARKERS[name], markersize=5,
                         mfc=st["color"] if record == "increment" else "white",
                         **(st if record == "increment" else {**st, "linestyle": "none"}))
-                any_data = True
-    if not any_data:
-        _no_data(ax, "contact angle")
-    handles = _branch_handles(history) + [
-        Line2D([], [], color="black", marker="o", linestyle="none", label="energy balance"),
-        Line2D([], [], color="black", marker="^", mfc="white", linestyle="none",
-               label="topological")]
-    ax.legend(handles=handles, loc="best", fontsize=8)
+                drawn.add(name)
+    _angle_legend(fig, ax, history, drawn)
     ax.set_xlabel("time [s]")
     ax.set_ylabel("effective contact angle θ_w [°]")
     ax.set_title("Effective contact angle over time")

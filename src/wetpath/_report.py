@@ -206,19 +206,24 @@ def _flag_text(rows: pd.DataFrame) -> pd.Series:
     return rows.apply(_raised, axis=1) if len(rows) else pd.Series([], dtype=object)
 
 
+def _deg(v, sign: str = "") -> str:
+    return f"{v:{sign}.1f}°" if pd.notna(v) and math.isfinite(v) else "–"
+
+
 def _headline(branches: pd.DataFrame) -> str:
     items = []
     for _, r in branches.iterrows():
         if r["branch_kind"] == "static":
             continue
-        text = (f"branch {int(r['branch'])} ({_esc(r['branch_kind'])}): θ = "
-                f"{_cell(r['theta_energy_pooled_deg'])}° "
-                f"[{_cell(r['theta_energy_pooled_lo_deg'])}, "
-                f"{_cell(r['theta_energy_pooled_hi_deg'])}]")
+        text = (f"branch {int(r['branch'])} ({_esc(r['branch_kind'])}), steps "
+                f"{_esc(r['step_first'])}→{_esc(r['step_last'])}: θ = "
+                f"{_deg(r['theta_energy_pooled_deg'])} "
+                f"[{_deg(r['theta_energy_pooled_lo_deg'])}, "
+                f"{_deg(r['theta_energy_pooled_hi_deg'])}]")
         if pd.notna(r.get("hysteresis_deg", np.nan)):
             text += (f"; hysteresis vs branch {_cell(r['hysteresis_vs_branch'])}: "
-                     f"{r['hysteresis_deg']:+.1f}° [{r['hysteresis_lo_deg']:+.1f}, "
-                     f"{r['hysteresis_hi_deg']:+.1f}]")
+                     f"{_deg(r['hysteresis_deg'], '+')} [{_deg(r['hysteresis_lo_deg'], '+')}, "
+                     f"{_deg(r['hysteresis_hi_deg'], '+')}]")
         items.append(f"<li>{text}</li>")
     return f"<ul>{''.join(items)}</ul>" if items else "<p>No moving branch.</p>"
 
