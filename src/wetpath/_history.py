@@ -431,6 +431,12 @@ def _fmt(v, spec: str) -> str:
     return format(v, spec)
 
 
+def _fmt_interval(lo, hi, spec: str) -> str:
+    if pd.isna(lo) or pd.isna(hi):
+        return "–"
+    return f"{_fmt(lo, spec)}–{_fmt(hi, spec)}"
+
+
 def format_branch_summary(source: str | os.PathLike | pd.DataFrame) -> str:
     """The branch summary as a plain-text table for a terminal.
 
@@ -476,12 +482,10 @@ def format_branch_summary(source: str | os.PathLike | pd.DataFrame) -> str:
             f"{_fmt(r['saturation_w_start'], '.3f')}→{_fmt(r['saturation_w_end'], '.3f')}",
             f"{int(r['n_used'])}/{int(r['n_increments'])}",
             _fmt(r["theta_energy_pooled_deg"], ".1f"),
-            f"{_fmt(r['theta_energy_pooled_lo_deg'], '.1f')}–"
-            f"{_fmt(r['theta_energy_pooled_hi_deg'], '.1f')}",
+            _fmt_interval(r["theta_energy_pooled_lo_deg"], r["theta_energy_pooled_hi_deg"], ".1f"),
             _fmt(r["theta_topo_median_deg"], ".1f"),
             _fmt(r["hysteresis_deg"], "+.1f"),
-            (f"{_fmt(r['hysteresis_lo_deg'], '+.1f')}–{_fmt(r['hysteresis_hi_deg'], '+.1f')}"
-             if pd.notna(r["hysteresis_deg"]) else "–"),
+            _fmt_interval(r["hysteresis_lo_deg"], r["hysteresis_hi_deg"], "+.1f"),
         ])
     widths = [max(len(h), *(len(row[k]) for row in lines)) if lines else len(h)
               for k, h in enumerate(header)]
