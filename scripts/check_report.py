@@ -15,6 +15,7 @@ Chromium comes from the Debian package ``chromium`` (``apt-get install -y chromi
 from __future__ import annotations
 
 import argparse
+import html
 import json
 import os
 import re
@@ -117,9 +118,20 @@ def check_report(report: str | os.PathLike, *, screenshot: str | os.PathLike | N
     probed, n = re.subn(r"<head>", "<head>" + PROBE, text, count=1, flags=re.IGNORECASE)
     if not n:
         probed = PROBE + text
+    # the probed copy sits beside the report so that relative references resolve as they would
+    # for the report itself; profiles and nothing else go to a temporary directory
+    fd, name = tempfile.mkstemp(prefix=f".{report.stem}-check-", suffix=".html", dir=report.parent)
+    copy = Path(name)
+    with os.fdopen(fd, "w", encoding="utf-8") as fh:
+        fh.write(probed)
+    try:
+        return _check(chromium, report, copy, screenshot, width, timeout)
+    finally:
+        copy.unlink(missing_ok=True)
+
+
+def _check(chromium, report, copy, screenshot, width, timeout) -> dict:
     with tempfile.TemporaryDirectory(prefix="wetpath-check-") as tmp:
-        copy = Path(tmp) / report.name
-        copy.write_text(probed, encoding="utf-8")
         res = _run(chromium, ["--virtual-time-budget=10000", f"--window-size={width},900",
                               "--dump-dom", copy.as_uri()],
                    str(Path(tmp) / "profile-dom"), timeout)
@@ -128,8 +140,6 @@ def check_report(report: str | os.PathLike, *, screenshot: str | os.PathLike | N
             return {"ok": False, "images": 0, "broken": [], "height": 0, "title": "",
                     "errors": [f"the page did not finish loading (exit {res.returncode}): "
                                + res.stderr.strip()[-300:]], "screenshot": None}
-        import html
-
         found = json.loads(html.unescape(m.group(1)))
         found["errors"] = found["errors"] + _console_errors(res.stderr)
         found["screenshot"] = None

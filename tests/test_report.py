@@ -135,10 +135,15 @@ def test_report_renders_in_headless_chromium(tmp_path, chromium, report):
 
 def test_checker_catches_a_broken_image(tmp_path, chromium):
     checker, path = chromium
+    from matplotlib.image import imsave
+    imsave(tmp_path / "present.png", np.zeros((4, 4)))
     page = ("<!DOCTYPE html><html><head><title>t</title></head><body>"
             '<img src="data:image/png;base64,AAAA" alt="broken">'
+            '<img src="present.png" alt="present">'
             '<img src="missing.png" alt="absent"></body></html>')
     (tmp_path / "bad.html").write_text(page)
     found = checker.check_report(tmp_path / "bad.html", chromium=path)
-    assert not found["ok"]
+    assert not found["ok"] and found["images"] == 3
+    # relative references resolve beside the report: only the two bad images fail
     assert sorted(found["broken"]) == ["absent", "broken"]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["bad.html", "present.png"]
