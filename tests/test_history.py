@@ -203,3 +203,26 @@ def test_tables_written_and_formatted(tmp_path):
         format_branch_summary(tmp_path / "empty")
     with pytest.raises(WetpathError, match="summary: .*absent: no such file or directory"):
         format_branch_summary(tmp_path / "absent")
+
+
+def test_tube_bundle_exact_against_independent_integrals():
+    # the generator the branch tests rely on: cap volume by numerical integration of the spherical
+    # meniscus height profile (scipy.integrate.quad), lateral area 2πrL, flat meniscus at 90°
+    from scipy.integrate import quad
+
+    from wetpath.synthetic import tube_bundle_exact
+
+    r, h, length, theta = 12.0, 50.0, 200.0, 40.0
+    big = r / math.cos(math.radians(theta))
+    cap, _ = quad(lambda rho: 2 * math.pi * rho * (math.sqrt(big**2 - rho**2)
+                                                   - big * math.sin(math.radians(theta))), 0, r)
+    out = tube_bundle_exact([r], [h], theta, length, bulk_volume=1e6)
+    assert out["volume_n"] == pytest.approx(math.pi * r**2 * h + cap, rel=1e-9)
+    assert out["area_ws"] + out["area_ns"] == pytest.approx(2 * math.pi * r * length)
+    assert out["curvature_nw"] == pytest.approx(2 * math.cos(math.radians(theta)) / r)
+    flat = tube_bundle_exact([r, 2 * r], [h, h], 90.0, length, bulk_volume=1e6)
+    assert flat["area_nw"] == pytest.approx(5 * math.pi * r**2)
+    assert flat["volume_n"] == pytest.approx(5 * math.pi * r**2 * h)
+    assert flat["curvature_nw"] == pytest.approx(0.0, abs=1e-15)
+    with pytest.raises(ValueError, match="outside its tube"):
+        tube_bundle_exact([r], [length], theta, length, bulk_volume=1e6)

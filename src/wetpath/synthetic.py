@@ -256,11 +256,15 @@ def tube_bundle_exact(radii, heights, theta_w_deg: float, length: float,
     r = np.asarray(radii, dtype=float)
     h = np.asarray(heights, dtype=float)
     c = math.cos(math.radians(theta_w_deg))
-    big = r / abs(c) if abs(c) > 1e-12 else np.full_like(r, np.inf)
-    sag = np.where(np.isfinite(big), big * (1 - math.sin(math.radians(theta_w_deg))), 0.0)
-    if np.any(h < 0) or np.any(h + np.maximum(sag, 0) > length):
+    if abs(c) > 1e-12:
+        big = r / abs(c)
+        sag = big * (1 - math.sin(math.radians(theta_w_deg)))
+        cap_volume = math.pi * sag**2 * (3 * big - sag) / 3
+    else:  # flat meniscus
+        sag = cap_volume = np.zeros_like(r)
+    ahead, behind = (sag, 0.0) if c > 0 else (0.0, sag)  # the cap bulges into w when c > 0
+    if np.any(h - behind < 0) or np.any(h + ahead > length):
         raise ValueError("a meniscus lies outside its tube")
-    cap_volume = np.where(np.isfinite(big), math.pi * sag**2 * (3 * big - sag) / 3, 0.0)
     volume_n = float(np.sum(math.pi * r**2 * h + math.copysign(1.0, c) * cap_volume))
     pore = float(np.sum(math.pi * r**2 * length))
     menisci = [meniscus_exact(ri, theta_w_deg) for ri in r]
