@@ -23,7 +23,7 @@ from ._codes import NONWETTING, SOLID, WETTING
 
 __all__ = [
     "ball", "ball_exact", "shell", "torus", "cylinder", "cap_on_plate", "cap_exact",
-    "tube_meniscus", "tube_slug", "meniscus_exact", "random_medium", "unit",
+    "tube_meniscus", "tube_slug", "meniscus_exact", "tube_bundle_exact", "random_medium", "unit",
 ]
 
 
@@ -243,4 +243,51 @@ def random_medium(shape, *, porosity: float = 0.35, saturation_w: float = 0.5,
         _, y, x = _centred_grid(shape, np.zeros(3))
         r = (min(shape[1], shape[2]) - 1) / 2
         out[:, (y[0] ** 2 + x[0] ** 2) > r * r] = 0
+    return out
+
+
+def tube_bundle_exact(radii, heights, theta_w_deg: float, length: float,
+                      bulk_volume: float) -> dict[str, float]:
+    """Closed-form state of a bundle of parallel capillary tubes, n below and w above a meniscus.
+
+    Tube i (radius r_i, length ``length``) holds n from its inlet up to its contact line at height
+    h_i and a spherical-cap meniscus of radius R_i = r_i/|cos θ_w| meeting the wall at θ_w (through
+    w), whose apex lies sag_i = R_i (1 − sin θ_w) beyond the contact line toward w when θ_w < 90°.
+    Solid and the space between tubes fill the rest of ``bulk_volume``. Moving every contact line
+    by the same distance d keeps A_nw fixed and changes V_w by −π d Σr², A_ws by −2π d Σr, so the
+    energy balance with the area-weighted mean κ returns θ_w exactly (Blunt et al. 2019).
+
+    Returns volumes, areas (``area_nw``, ``area_ws``, ``area_ns``), specific areas ``a_*`` (per
+    unit length), porosity, ``saturation_w``, ``curvature_nw`` (area-weighted mean of
+    2 cos θ_w/r_i), ``euler_n`` (one n column per tube), ``contact_loops`` and ``contact_length``.
+    """
+    r = np.asarray(radii, dtype=float)
+    h = np.asarray(heights, dtype=float)
+    c = math.cos(math.radians(theta_w_deg))
+    if abs(c) > 1e-12:
+        big = r / abs(c)
+        sag = big * (1 - math.sin(math.radians(theta_w_deg)))
+        cap_volume = math.pi * sag**2 * (3 * big - sag) / 3
+    else:  # flat meniscus
+        sag = cap_volume = np.zeros_like(r)
+    ahead, behind = (sag, 0.0) if c > 0 else (0.0, sag)  # the cap bulges into w when c > 0
+    if np.any(h - behind < 0) or np.any(h + ahead > length):
+        raise ValueError("a meniscus lies outside its tube")
+    volume_n = float(np.sum(math.pi * r**2 * h + math.copysign(1.0, c) * cap_volume))
+    pore = float(np.sum(math.pi * r**2 * length))
+    menisci = [meniscus_exact(ri, theta_w_deg) for ri in r]
+    a_nw = np.array([m["area_nw"] for m in menisci])
+    kappa = np.array([m["curvature_nw"] for m in menisci])
+    out = {
+        "bulk_volume": float(bulk_volume), "pore_volume": pore, "volume_n": volume_n,
+        "volume_w": pore - volume_n, "porosity": pore / bulk_volume,
+        "saturation_w": (pore - volume_n) / pore,
+        "area_nw": float(a_nw.sum()), "area_ws": float(np.sum(2 * math.pi * r * (length - h))),
+        "area_ns": float(np.sum(2 * math.pi * r * h)),
+        "curvature_nw": float(np.sum(kappa * a_nw) / a_nw.sum()),
+        "euler_n": int(r.size), "contact_loops": int(r.size),
+        "contact_length": float(np.sum(2 * math.pi * r)),
+    }
+    for pair in ("nw", "ws", "ns"):
+        out[f"a_{pair}"] = out[f"area_{pair}"] / bulk_volume
     return out
