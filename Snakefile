@@ -10,9 +10,11 @@ include: "workflow/rules/common.smk"
 include: "workflow/rules/ingest.smk"
 include: "workflow/rules/summarise.smk"
 include: "workflow/rules/aggregate.smk"
+include: "workflow/rules/analysis.smk"
 
 
 rule all:
     default_target: True
     input:
         expand(f"{RESULTS}/{{series}}/states.csv", series=SERIES),
+        expand(f"{RESULTS}/{{series}}/report.html", series=SERIES),

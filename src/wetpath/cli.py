@@ -206,6 +206,151 @@ def _cmd_run(args) -> int:
     return code
 
 
+# ---- per-step analysis ------------------------------------------------------------------------
+
+def _threads(p):
+    p.add_argument("--threads", type=int, default=None,
+                   help="threads for numba and the chunk passes (default: all cores)")
+
+
+def _add_label(p):
+    p.add_argument("store", type=Path, help="step store (<step>.zarr)")
+    p.add_argument("out_store", type=Path, help="cluster label store to write")
+    p.add_argument("--connectivity", type=int, choices=[6, 26], default=26,
+                   help="voxel adjacency of a non-wetting cluster (default 26)")
+    _threads(p)
+
+
+@subcommand("label", _add_label, "label the non-wetting clusters of one step store")
+def _cmd_label(args) -> int:
+    from ._stages import label_step
+
+    n = label_step(args.store, args.out_store, connectivity=args.connectivity,
+                   threads=args.threads)
+    print(f"{n} non-wetting clusters in {args.out_store}")
+    return 0
+
+
+def _add_measure(p):
+    p.add_argument("store", type=Path, help="step store (<step>.zarr)")
+    p.add_argument("clusters", type=Path, help="cluster label store of the same step")
+    p.add_argument("out_folder", type=Path, help="folder for <step>.csv and its companions")
+    p.add_argument("--step", help="step name (default: from the store)")
+    p.add_argument("--settings", type=_json, default={},
+                   help="JSON: sigma (voxels), connectivity, perturb, geometric")
+    _threads(p)
+
+
+@subcommand("measure", _add_measure,
+            "geometry, topological and geometric angles of one step (tables per state/cluster)")
+def _cmd_measure(args) -> int:
+    from ._stages import measure_step
+
+    s = args.settings
+    measure_step(args.store, args.clusters, args.out_folder, step=args.step,
+                 sigma=float(s.get("sigma", 1.0)), connectivity=int(s.get("connectivity", 26)),
+                 perturb=bool(s.get("perturb", True)), geometric=bool(s.get("geometric", True)),
+                 threads=args.threads)
+    return 0
+
+
+def _add_track(p):
+    p.add_argument("clusters_a", type=Path, help="cluster store of the earlier step")
+    p.add_argument("clusters_b", type=Path, help="cluster store of the later step")
+    p.add_argument("out_overlaps", type=Path, help="overlap table to write (CSV)")
+    p.add_argument("out_events", type=Path, help="events table to write (CSV)")
+    p.add_argument("--voxel-size-um", type=float, required=True, help="voxel edge, µm")
+    p.add_argument("--shift", type=int, nargs=3, metavar=("DZ", "DY", "DX"),
+                   help="rigid drift of the later step, voxels")
+    _threads(p)
+
+
+@subcommand("track", _add_track, "match the clusters of two steps and classify the events")
+def _cmd_track(args) -> int:
+    from ._stages import track_step
+
+    track_step(args.clusters_a, args.clusters_b, args.out_overlaps, args.out_events,
+               voxel_size_um=args.voxel_size_um, shift=args.shift, threads=args.threads)
+    return 0
+
+
+def _add_increment(p):
+    p.add_argument("measures", type=Path, help="folder of the measure tables")
+    p.add_argument("step_from", help="earlier step")
+    p.add_argument("step_to", help="later step")
+    p.add_argument("overlaps", type=Path, help="overlap table of the increment")
+    p.add_argument("events", type=Path, help="events table of the increment")
+    p.add_argument("out_csv", type=Path, help="one-row increment table to write")
+    p.add_argument("out_families", type=Path, help="per cluster-family table to write")
+    p.add_argument("--settings", type=_json, default={},
+                   help="JSON keyword arguments of wetpath.energy_balance_angle")
+
+
+@subcommand("increment", _add_increment, "energy-balance angle of one increment and its families")
+def _cmd_increment(args) -> int:
+    from ._stages import increment_step
+
+    increment_step(args.measures, args.step_from, args.step_to, args.overlaps, args.events,
+                   args.out_csv, args.out_families, settings=args.settings)
+    return 0
+
+
+def _add_increments(p):
+    p.add_argument("states", type=Path, help="the series' states.csv")
+    p.add_argument("out_csv", type=Path, help="increments table to write")
+    p.add_argument("--tables", nargs="*", type=Path, default=[], help="per-increment tables")
+    p.add_argument("--overlaps", nargs="*", type=Path, default=[],
+                   help="overlap tables in time order (for the lineages)")
+    p.add_argument("--lineages", type=Path, help="lineage table to write")
+
+
+@subcommand("increments", _add_increments, "join the per-increment tables of a series")
+def _cmd_increments(args) -> int:
+    from ._stages import collect_increments
+
+    collect_increments(args.states, args.tables, args.out_csv, overlap_csvs=args.overlaps,
+                       lineages_csv=args.lineages)
+    return 0
+
+
+def _add_history(p):
+    p.add_argument("states", type=Path, help="the series' states.csv")
+    p.add_argument("increments", type=Path, help="the series' increments table")
+    p.add_argument("out_folder", type=Path, help="series results folder (history, report)")
+    p.add_argument("--stores", nargs="*", type=Path, default=[],
+                   help="step stores in time order (phase slices of first, middle, last)")
+    p.add_argument("--settings", type=_json, default={},
+                   help="JSON: interfacial_tension_n_per_m, static_tolerance, title, config")
+
+
+@subcommand("history", _add_history,
+            "saturation-path history, branch summary, figures and the HTML report")
+def _cmd_history(args) -> int:
+    from ._stages import history_series
+
+    s = args.settings
+    out = history_series(args.states, args.increments, args.out_folder, stores=args.stores,
+                         config=s.get("config"),
+                         sigma_n_per_m=s.get("interfacial_tension_n_per_m"),
+                         static_tol=float(s.get("static_tolerance", 0.005)), title=s.get("title"))
+    print(f"report written to {out}")
+    return 0
+
+
+def _add_summary(p):
+    p.add_argument("results", type=Path, help="a series results folder (or its branches.csv)")
+
+
+@subcommand("summary", _add_summary, "print the branch summary of a series as a table")
+def _cmd_summary(args) -> int:
+    from ._history import format_branch_summary
+
+    if not args.results.exists():
+        raise WetpathError("no such results folder", step="summary", path=args.results)
+    print(format_branch_summary(args.results))
+    return 0
+
+
 # ---- main -------------------------------------------------------------------------------------
 
 def build_parser() -> argparse.ArgumentParser:

@@ -28,6 +28,8 @@ CODE = code_hash()
 wildcard_constraints:
     series=r"[A-Za-z0-9][A-Za-z0-9_.-]*",
     step=r"[A-Za-z0-9][A-Za-z0-9_.-]*",
+    a=r"[A-Za-z0-9][A-Za-z0-9_.-]*",
+    b=r"[A-Za-z0-9][A-Za-z0-9_.-]*",
 
 
 def _series_folder(name):
