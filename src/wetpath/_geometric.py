@@ -101,11 +101,13 @@ def _gradient_at(field: np.ndarray, pts: np.ndarray) -> np.ndarray:
     return np.stack([_sample(g, pts) for g in np.gradient(field)], axis=1)
 
 
-def _mesh(field: np.ndarray, toward_high: bool) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Marching cubes at 0.5 + Taubin; vertex normals oriented up (or down) the field gradient."""
+def _mesh(field: np.ndarray, toward_high: bool, mask: np.ndarray | None = None
+          ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Marching cubes at 0.5 (only where ``mask``) + Taubin; vertex normals oriented up (or down)
+    the field gradient."""
     from skimage.measure import marching_cubes
 
-    verts, faces, _, _ = marching_cubes(field, 0.5, allow_degenerate=False)
+    verts, faces, _, _ = marching_cubes(field, 0.5, allow_degenerate=False, mask=mask)
     faces = faces.astype(np.int64)
     verts = _taubin(verts, faces)
     normals = _vertex_normals(verts, faces)
@@ -117,16 +119,20 @@ def _mesh(field: np.ndarray, toward_high: bool) -> tuple[np.ndarray, np.ndarray,
 def _contact_points(solid_verts, solid_faces, frac, spacing):
     """Points where the n fraction ``frac`` crosses 1/2 along solid-mesh edges, thinned to one per
     cell of ``spacing`` voxels."""
-    e = np.sort(solid_faces[:, [0, 1, 1, 2, 2, 0]].reshape(-1, 2), axis=1)
-    e = np.unique(e, axis=0)
-    fa, fb = frac[e[:, 0]] - 0.5, frac[e[:, 1]] - 0.5
+    # every edge is met twice (once per face); its two identical points fall in one thinning cell
+    e = solid_faces[:, [0, 1, 1, 2, 2, 0]].reshape(-1, 2)
+    a, b = e[:, 0], e[:, 1]
+    fa, fb = frac[a] - 0.5, frac[b] - 0.5
     cross = (fa * fb < 0) & np.isfinite(fa) & np.isfinite(fb)
-    e, fa, fb = e[cross], fa[cross], fb[cross]
+    a, b, fa, fb = a[cross], b[cross], fa[cross], fb[cross]
     t = (fa / (fa - fb))[:, None]
-    pts = solid_verts[e[:, 0]] * (1 - t) + solid_verts[e[:, 1]] * t
+    pts = solid_verts[a] * (1 - t) + solid_verts[b] * t
     if len(pts) == 0:
         return pts
-    _, keep = np.unique(np.floor(pts / spacing).astype(np.int64), axis=0, return_index=True)
+    cell = np.floor(pts / spacing).astype(np.int64)
+    cell -= cell.min(axis=0)
+    dims = cell.max(axis=0) + 1
+    _, keep = np.unique(np.ravel_multi_index(cell.T, dims), return_index=True)
     return pts[np.sort(keep)]
 
 
@@ -186,9 +192,9 @@ def _fit_quadrics(points, band_verts, band_normals, band_dist, fit_radius, slope
     a = np.concatenate([rows_pos, rows_su, rows_sv], axis=1)  # (P, 3K, 6)
     b = np.concatenate([h, -nu / nh_safe, -nvv / nh_safe], axis=1)
     wt = np.concatenate([w, ok_n * slope_scale**2, ok_n * slope_scale**2], axis=1)
-    m = np.einsum("pki,pk,pkj->pij", a, wt, a) + 1e-9 * np.eye(6)
-    r = np.einsum("pki,pk,pk->pi", a, wt, b)
-    beta = np.linalg.solve(m, r[..., None])[..., 0]
+    aw = np.swapaxes(a, 1, 2) * wt[:, None, :]  # (P, 6, 3K)
+    m = aw @ a + 1e-9 * np.eye(6)
+    beta = np.linalg.solve(m, aw @ b[..., None])[..., 0]
     dist_fit = band_dist[idx]
     span = (np.where(valid, dist_fit, -np.inf).max(axis=1)
             - np.where(valid, dist_fit, np.inf).min(axis=1))
@@ -256,7 +262,12 @@ def _cluster_angles(lab, cl, k, box, sigma, spacing, fit_radius, band) -> dict:
     d_solid = (ndimage.distance_transform_edt(~s_ind) - 0.5).astype(np.float32)
     ds_n = _sample(d_solid, nv)
     area_nw = _nw_area(nv, nf, ds_n)
-    sv, sf, sn = _mesh(gs, toward_high=False)  # ν_s: down the solid indicator, into the pore
+    # ν_s: down the solid indicator, into the pore; meshed only within the blur's reach (4σ) of
+    # the cluster, where its contact line can be
+    near = gn > 0
+    if not ((gs[near] > 0.5).any() and (gs[near] < 0.5).any()):
+        return _no_points(area_nw)
+    sv, sf, sn = _mesh(gs, toward_high=False, mask=near)
     with np.errstate(invalid="ignore", divide="ignore"):
         frac = _sample(gn, sv) / _sample(gf, sv)
     pts = _contact_points(sv, sf, frac, spacing)
@@ -358,7 +369,9 @@ def geometric_angles(labels: np.ndarray, voxel_size: float = 1.0, *,
         raise WetpathError(f"clusters has shape {np.shape(clusters)} but labels {lab.shape}",
                            step=_STEP)
     band = (2.5 * sigma, 9.0) if band is None else band
-    pad = int(math.ceil(band[1] + fit_radius + 4 * sigma)) + 2
+    # the fits use the cluster's own vertices (inside its box); the margin only has to hold the
+    # blur (4σ), the solid planes near the line and the solid within band[1] of the interface
+    pad = int(math.ceil(max(band[1], 4 * sigma + 4))) + 2
     frames, small = [], []
     for k, sl in enumerate(ndimage.find_objects(clusters), start=1):
         if sl is None:
