@@ -12,8 +12,9 @@ import pandas as pd
 import pytest
 
 from wetpath import WetpathError
-from wetpath._energy import energy_balance_angle, family_energy_angles
-from wetpath.synthetic import cap_exact, meniscus_exact
+from wetpath._codes import NONWETTING, SOLID
+from wetpath._energy import energy_balance_angle, family_energy_angles, perturb_fluid_boundary
+from wetpath.synthetic import ball, cap_exact, meniscus_exact
 
 TUBE_LENGTH = 200.0
 BULK = 1.0e6
@@ -156,6 +157,12 @@ def test_bootstrap_interval_covers_truth():
         widths.append(hi - lo)
     assert hits >= 16, hits
     assert 0.5 < np.median(widths) < 20
+    # block tables without curvature sums: κ is not resampled, the interval narrows but exists
+    b, a = noisy_bundle(0)
+    for s in (b, a):
+        s["blocks"] = s["blocks"].drop(columns=["curv_area_nw", "curv_weight_nw"])
+    res = energy_balance_angle(b, a, n_boot=200)
+    assert res["theta_energy_lo_deg"] < res["theta_energy_deg"] < res["theta_energy_hi_deg"]
 
 
 def test_bootstrap_is_paired_and_exact_case_has_zero_width():
@@ -185,11 +192,11 @@ def test_perturbed_states_widen_interval_in_quadrature():
 
 def test_flag_no_wetted_area_change():
     # A free n ball in w shrinking (no solid contact): ΔA_ws = 0 → θ undefined.
-    def ball(R):
+    def free_ball(R):
         return {"bulk_volume": BULK, "pore_volume": BULK, "volume_n": 4 / 3 * math.pi * R**3,
                 "volume_w": BULK - 4 / 3 * math.pi * R**3, "area_nw": 4 * math.pi * R**2,
                 "area_ws": 0.0, "area_ns": 0.0, "curvature_nw": 2 / R}
-    res = energy_balance_angle(ball(20), ball(19))
+    res = energy_balance_angle(free_ball(20), free_ball(19))
     assert res["flag_no_wetted_area_change"] and math.isnan(res["theta_energy_deg"])
     assert res["direction"] == "imbibition"
     noisy = energy_balance_angle(tube_state(20, 60, 60), tube_state(20, 60, 60.5), area_noise=100.0)
@@ -279,3 +286,20 @@ def test_family_angles_per_tube_and_flags():
     with pytest.raises(WetpathError, match="missing from the before cluster table"):
         family_energy_angles(pd.DataFrame({"event": ["move"], "parents": ["9"], "children": ["1"]}),
                              tb, ta)
+
+
+def test_perturb_fluid_boundary_moves_nw_boundary_only():
+    # A ball of n (R = 10) in w: dilating by one voxel adds about the shell 4πR² · 1 (closed form,
+    # face-connected growth of a digital ball: within 25 %), eroding removes about as much; the
+    # solid is untouched.
+    labels = ball(10.0, seed=1)
+    labels[:2] = SOLID
+    dilated, eroded = perturb_fluid_boundary(labels)
+    n0 = (labels == NONWETTING).sum()
+    shell = 4 * math.pi * 10.0**2
+    assert (dilated == NONWETTING).sum() - n0 == pytest.approx(shell, rel=0.25)
+    assert n0 - (eroded == NONWETTING).sum() == pytest.approx(shell, rel=0.25)
+    assert ((dilated == SOLID) == (labels == SOLID)).all()
+    assert ((eroded == SOLID) == (labels == SOLID)).all()
+    with pytest.raises(WetpathError, match="voxels must be a positive integer"):
+        perturb_fluid_boundary(labels, voxels=0)

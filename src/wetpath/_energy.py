@@ -29,13 +29,14 @@ from collections.abc import Mapping, Sequence
 import numpy as np
 import pandas as pd
 
+from ._codes import NONWETTING, WETTING, PhaseCodes, to_canonical
 from ._errors import WetpathError
 
-__all__ = ["energy_balance_angle", "family_energy_angles"]
+__all__ = ["energy_balance_angle", "family_energy_angles", "perturb_fluid_boundary"]
 
 _STEP = "energy"
-_BLOCK_SUMS = ("volume_w", "volume_n", "area_nw", "area_ws", "area_ns", "curv_area_nw",
-               "curv_weight_nw")
+_BLOCK_SUMS = ("volume_w", "volume_n", "area_nw", "area_ws", "area_ns")
+_BLOCK_CURV = ("curv_area_nw", "curv_weight_nw")
 
 
 def _get(state: Mapping, key: str, which: str) -> float:
@@ -82,9 +83,12 @@ def _paired_blocks(before: Mapping, after: Mapping) -> pd.DataFrame | None:
     return bb.merge(ba, on="block", suffixes=("_b", "_a"), validate="one_to_one")
 
 
-def _block_bootstrap(blocks: pd.DataFrame, n_boot: int, seed: int):
+def _block_bootstrap(blocks: pd.DataFrame, kappa_states: tuple[float, float], n_boot: int,
+                     seed: int):
     """Paired bootstrap over blocks: the same resampled blocks in both states.
 
+    κ of each state is Σ κ dA / Σ dA over the resampled blocks when the tables carry
+    ``curv_area_nw, curv_weight_nw``, else the state's own ``curvature_nw`` (not resampled).
     Returns the cos θ_t replicates and the value from the full block sums (same estimator), so the
     caller can use the deviations of the replicates from the full-sum value.
     """
@@ -92,11 +96,15 @@ def _block_bootstrap(blocks: pd.DataFrame, n_boot: int, seed: int):
     rng = np.random.default_rng(seed)
     weights = rng.multinomial(n, np.full(n, 1.0 / n), size=n_boot).astype(float)
     weights = np.vstack([np.ones(n), weights])  # row 0: the full sample
-    sums = {f"{c}_{s}": weights @ blocks[f"{c}_{s}"].to_numpy(float)
-            for c in _BLOCK_SUMS for s in "ba"}
-    with np.errstate(divide="ignore", invalid="ignore"):
-        kappa = 0.5 * (sums["curv_area_nw_b"] / sums["curv_weight_nw_b"]
-                       + sums["curv_area_nw_a"] / sums["curv_weight_nw_a"])
+    curv = all(f"{c}_{s}" in blocks for c in _BLOCK_CURV for s in "ba")
+    cols = _BLOCK_SUMS + (_BLOCK_CURV if curv else ())
+    sums = {f"{c}_{s}": weights @ blocks[f"{c}_{s}"].to_numpy(float) for c in cols for s in "ba"}
+    if curv:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            kappa = 0.5 * (sums["curv_area_nw_b"] / sums["curv_weight_nw_b"]
+                           + sums["curv_area_nw_a"] / sums["curv_weight_nw_a"])
+    else:
+        kappa = 0.5 * sum(kappa_states)
     cos = _balance(sums["area_nw_a"] - sums["area_nw_b"], sums["area_ws_a"] - sums["area_ws_b"],
                    sums["volume_w_a"] - sums["volume_w_b"], kappa)
     return cos[1:], cos[0]
@@ -219,8 +227,9 @@ def energy_balance_angle(before: Mapping, after: Mapping, *, large_step: float =
 
     The interval combines two spreads of cos θ_t. (1) Sampling: a paired bootstrap over the
     per-block sums (the same resampled blocks in both states; κ of each state from Σ κ dA / Σ dA
-    of the resampled blocks); the 2.5 % and 97.5 % quantiles of the replicates' deviations from
-    the full-block value give half-widths b_lo, b_hi (needs ≥ 2 blocks). (2) Segmentation: the
+    of the resampled blocks, or the state's ``curvature_nw`` when the block tables carry no
+    ``curv_area_nw, curv_weight_nw``); the 2.5 % and 97.5 % quantiles of the replicates'
+    deviations from the full-block value give half-widths b_lo, b_hi (needs ≥ 2 blocks). (2) Segmentation: the
     largest deviation p of cos θ_t over the perturbed state pairs. They are treated as
     independent and added in quadrature, cos ∈ [cos − √(b_lo² + p²), cos + √(b_hi² + p²)], then
     clipped to [−1, 1] and turned into angles (θ_lo from the upper cosine). With neither source
@@ -251,7 +260,8 @@ def energy_balance_angle(before: Mapping, after: Mapping, *, large_step: float =
     blocks = _paired_blocks(before, after)
     half_lo = half_hi = math.nan
     if np.isfinite(cos) and blocks is not None and len(blocks) >= 2 and n_boot > 0:
-        reps, full = _block_bootstrap(blocks, n_boot, seed)
+        reps, full = _block_bootstrap(blocks, (inc["kappa_before"], inc["kappa_after"]), n_boot,
+                                      seed)
         dev = reps[np.isfinite(reps)] - full
         if dev.size and np.isfinite(full):
             half_lo, half_hi = -min(np.quantile(dev, 0.025), 0.0), max(np.quantile(dev, 0.975), 0.0)
@@ -300,6 +310,51 @@ def energy_balance_angle(before: Mapping, after: Mapping, *, large_step: float =
         "flag_curvature_undefined": kappa_undefined,
         "flag_no_nonwetting": bool(inc["no_nonwetting"]),
     }
+
+
+def perturb_fluid_boundary(labels: np.ndarray, *, codes: PhaseCodes | Mapping | None = None,
+                           voxels: int = 1) -> tuple[np.ndarray, np.ndarray]:
+    """Two copies of a state with the n–w boundary moved by ±``voxels`` (segmentation stand-ins).
+
+    The n phase is dilated into w (first copy) or eroded into w (second copy) with the 6-connected
+    unit ball, ``voxels`` times; solid and excluded voxels are untouched. Measure both copies of
+    each state with :func:`wetpath.measure_state` and pass them as ``before_perturbed`` /
+    ``after_perturbed`` to :func:`energy_balance_angle`.
+
+    Parameters
+    ----------
+    labels : ndarray of int, shape (z, y, x)
+        Phase labels (canonical codes unless ``codes`` says otherwise).
+    codes : PhaseCodes or mapping, optional
+        Label values of the phases.
+    voxels : int
+        How far the boundary moves (voxels, ≥ 1).
+
+    Returns
+    -------
+    dilated, eroded : ndarray of uint8
+        Canonical label volumes.
+
+    References
+    ----------
+    Serra, J. (1982). *Image Analysis and Mathematical Morphology*. Academic Press (dilation and
+    erosion).
+    """
+    from scipy import ndimage
+
+    if int(voxels) < 1:
+        raise WetpathError(f"voxels must be a positive integer, got {voxels!r}", step=_STEP)
+    lab = to_canonical(labels, codes, step=_STEP)
+    n = lab == NONWETTING
+    w = lab == WETTING
+    ball = ndimage.generate_binary_structure(3, 1)
+    grown = ndimage.binary_dilation(n, ball, iterations=int(voxels)) & w
+    shrunk = ndimage.binary_dilation(w, ball, iterations=int(voxels)) & n
+    dilated = lab.copy()
+    dilated[grown] = NONWETTING
+    eroded = lab.copy()
+    eroded[shrunk] = WETTING
+    return dilated, eroded
 
 
 def _ids(value) -> list[int]:
