@@ -229,8 +229,9 @@ def energy_balance_angle(before: Mapping, after: Mapping, *, large_step: float =
     per-block sums (the same resampled blocks in both states; κ of each state from Σ κ dA / Σ dA
     of the resampled blocks, or the state's ``curvature_nw`` when the block tables carry no
     ``curv_area_nw, curv_weight_nw``); the 2.5 % and 97.5 % quantiles of the replicates'
-    deviations from the full-block value give half-widths b_lo, b_hi (needs ≥ 2 blocks). (2) Segmentation: the
-    largest deviation p of cos θ_t over the perturbed state pairs. They are treated as
+    deviations from the full-block value give half-widths b_lo, b_hi (needs ≥ 2 blocks).
+    (2) Segmentation: the largest deviation p of cos θ_t over the perturbed state pairs (e.g.
+    from :func:`perturb_fluid_boundary`). They are treated as
     independent and added in quadrature, cos ∈ [cos − √(b_lo² + p²), cos + √(b_hi² + p²)], then
     clipped to [−1, 1] and turned into angles (θ_lo from the upper cosine). With neither source
     the interval is NaN.
