@@ -146,15 +146,39 @@ def _increment(before: Mapping, after: Mapping) -> dict:
 
 
 def _pair_perturbed(before, after, before_perturbed, after_perturbed):
-    """Pairs of states standing in for segmentation error (see energy_balance_angle)."""
-    bp = list(before_perturbed or [])
-    ap = list(after_perturbed or [])
-    if bp and ap:
-        if len(bp) != len(ap):
-            raise WetpathError(f"before_perturbed has {len(bp)} states but after_perturbed has "
-                               f"{len(ap)}; give the same perturbations of both states", step=_STEP)
-        return list(zip(bp, ap, strict=True))
-    return [(b, after) for b in bp] + [(before, a) for a in ap]
+    """Every pairing of a before state with an after state, perturbed or not, except the
+    unperturbed pair: segmentation errors of the two scans may be shared or independent."""
+    bs = [before, *(before_perturbed or [])]
+    as_ = [after, *(after_perturbed or [])]
+    return [(b, a) for i, b in enumerate(bs) for j, a in enumerate(as_) if i or j]
+
+
+def _interval(cos, inc, blocks, pairs, n_boot, seed, kappa_rel_error):
+    """Lower and upper cos θ_t: the half-widths of the block bootstrap, the perturbed pairs and
+    the declared curvature error added in quadrature (see energy_balance_angle)."""
+    if not np.isfinite(cos):
+        return math.nan, math.nan
+    parts = []  # (lower, upper) half-widths on cos θ_t
+    if blocks is not None and len(blocks) >= 2 and n_boot > 0:
+        reps, full = _block_bootstrap(blocks, (inc["kappa_before"], inc["kappa_after"]), n_boot,
+                                      seed)
+        dev = reps[np.isfinite(reps)] - full
+        if dev.size and np.isfinite(full):
+            parts.append((-min(np.quantile(dev, 0.025), 0.0), max(np.quantile(dev, 0.975), 0.0)))
+    if pairs:
+        dev_p = [float(_balance(ip["d_area_nw"], ip["d_area_ws"], ip["d_volume_w"],
+                                ip["kappa_mean"])) - cos
+                 for ip in (_increment(b, a) for b, a in pairs)]
+        p = max(abs(d) if np.isfinite(d) else math.inf for d in dev_p)
+        parts.append((p, p))
+    if kappa_rel_error > 0:
+        k = kappa_rel_error * abs(inc["kappa_mean"] * inc["d_volume_w"] / inc["d_area_ws"])
+        parts.append((k, k))
+    if not parts:
+        return math.nan, math.nan
+    lo = math.sqrt(sum(x * x for x, _ in parts))
+    hi = math.sqrt(sum(y * y for _, y in parts))
+    return float(np.clip(cos - lo, -1, 1)), float(np.clip(cos + hi, -1, 1))
 
 
 def energy_balance_angle(before: Mapping, after: Mapping, *, large_step: float = 0.25,
@@ -162,7 +186,8 @@ def energy_balance_angle(before: Mapping, after: Mapping, *, large_step: float =
                          n_boot: int = 500, seed: int = 0,
                          before_perturbed: Sequence[Mapping] | None = None,
                          after_perturbed: Sequence[Mapping] | None = None,
-                         static_tol: float = 1e-4, mixed_tol: float = 0.5) -> dict:
+                         static_tol: float = 1e-4, mixed_tol: float = 0.5,
+                         kappa_rel_error: float = 0.0) -> dict:
     """Energy-balance contact angle of the increment ``before`` → ``after`` over the field of view.
 
     cos θ_t = (ΔA_nw + κ̄ ΔV_w) / ΔA_ws with κ̄ = (κ_before + κ_after)/2 (Blunt et al. 2019).
@@ -189,15 +214,19 @@ def energy_balance_angle(before: Mapping, after: Mapping, *, large_step: float =
         Seed of the bootstrap.
     before_perturbed, after_perturbed : sequence of mapping, optional
         ``measure_state`` results of the same states with the fluid boundary moved by ±1 voxel
-        (stand-ins for segmentation error). When both are given they are paired by position (the
-        i-th perturbation of both states: a systematic segmentation bias shared by both scans);
-        when only one is given, each is paired with the unperturbed other state (an error in one
-        scan only).
+        (stand-ins for segmentation error; see :func:`perturb_fluid_boundary`). Every before
+        state (unperturbed or perturbed) is paired with every after state: a shared shift of
+        both scans mostly cancels in the differences, a shift of one scan only does not, and
+        both are possible.
     static_tol : float
         |ΔS_w| at or below which the increment is called ``static``.
     mixed_tol : float
         ``flag_mixed_direction`` when the smaller of the per-block summed gains and losses of V_w
         exceeds mixed_tol × |net ΔV_w|.
+    kappa_rel_error : float
+        Relative systematic error ε of the curvature estimator, added to the interval as
+        ε·|R_κ| (METHODS.md §3). Neither the bootstrap nor the boundary perturbation sees it;
+        mesh curvature of tube menisci of radius 15 voxels was off by 1–5.5 % here.
 
     Returns
     -------
@@ -233,8 +262,8 @@ def energy_balance_angle(before: Mapping, after: Mapping, *, large_step: float =
     (2) Segmentation: the largest deviation p of cos θ_t over the perturbed state pairs (e.g.
     from :func:`perturb_fluid_boundary`). They are treated as
     independent and added in quadrature, cos ∈ [cos − √(b_lo² + p²), cos + √(b_hi² + p²)], then
-    clipped to [−1, 1] and turned into angles (θ_lo from the upper cosine). With neither source
-    the interval is NaN.
+    clipped to [−1, 1] and turned into angles (θ_lo from the upper cosine); a curvature error
+    ε·|R_κ| (``kappa_rel_error``) joins the quadrature sum. With no source the interval is NaN.
 
     In a fully segmented pore space ΔV_n + ΔV_w = ΔV_pore, so ``flag_volume_not_conserved`` here
     detects pore-volume drift (registration, changed solid or excluded voxels) or unlabelled
@@ -259,26 +288,8 @@ def energy_balance_angle(before: Mapping, after: Mapping, *, large_step: float =
     out_of_range = bool(np.isfinite(cos) and abs(cos) > 1)
 
     blocks = _paired_blocks(before, after)
-    half_lo = half_hi = math.nan
-    if np.isfinite(cos) and blocks is not None and len(blocks) >= 2 and n_boot > 0:
-        reps, full = _block_bootstrap(blocks, (inc["kappa_before"], inc["kappa_after"]), n_boot,
-                                      seed)
-        dev = reps[np.isfinite(reps)] - full
-        if dev.size and np.isfinite(full):
-            half_lo, half_hi = -min(np.quantile(dev, 0.025), 0.0), max(np.quantile(dev, 0.975), 0.0)
     pairs = _pair_perturbed(before, after, before_perturbed, after_perturbed)
-    if np.isfinite(cos) and pairs:
-        dev_p = []
-        for b, a in pairs:
-            ip = _increment(b, a)
-            cp = float(_balance(ip["d_area_nw"], ip["d_area_ws"], ip["d_volume_w"],
-                                ip["kappa_mean"]))
-            dev_p.append(abs(cp - cos) if np.isfinite(cp) else math.inf)
-        p = max(dev_p)
-        half_lo = math.hypot(0.0 if math.isnan(half_lo) else half_lo, p)
-        half_hi = math.hypot(0.0 if math.isnan(half_hi) else half_hi, p)
-    cos_lo, cos_hi = (np.clip([cos - half_lo, cos + half_hi], -1, 1) if np.isfinite(half_lo)
-                      else (math.nan, math.nan))
+    cos_lo, cos_hi = _interval(cos, inc, blocks, pairs, n_boot, seed, kappa_rel_error)
 
     kb, ka = inc["kappa_before"], inc["kappa_after"]
     kmax = max(abs(kb), abs(ka))
