@@ -114,3 +114,21 @@ def test_growing_cap_measured(theta_w):
     # R_κ of the exact states; measured ΔA_ws on the plate moves it (pre-merge run: 4.92, 2.16,
     # 0.89 against 4.51, 2.00, 0.83, with θ within 2.2°)
     assert res["r_kappa"] == pytest.approx({60.0: 4.5, 90.0: 2.0, 120.0: 0.83}[theta_w], rel=0.15)
+
+
+@pytest.mark.parametrize("theta_w", [30.0, 60.0, 120.0])
+def test_interval_from_perturbed_boundaries_covers_truth(theta_w):
+    # ±1-voxel moves of the n–w boundary in each scan (segmentation stand-ins) plus a declared
+    # 5 % curvature error (mesh κ of these menisci was 1–5.5 % off before merging) must cover
+    # the closed-form angle θ_w.
+    from wetpath._energy import perturb_fluid_boundary
+
+    b = tube_meniscus(15.0, theta_w, 2.0, offset=OFFSET)
+    a = tube_meniscus(15.0, theta_w, 2.0 + STEP, offset=OFFSET)
+    res = energy_balance_angle(
+        wetpath.measure_state(b), wetpath.measure_state(a),
+        before_perturbed=[wetpath.measure_state(x) for x in perturb_fluid_boundary(b)],
+        after_perturbed=[wetpath.measure_state(x) for x in perturb_fluid_boundary(a)],
+        kappa_rel_error=0.05)
+    assert res["theta_energy_lo_deg"] <= theta_w <= res["theta_energy_hi_deg"]
+    assert res["theta_energy_hi_deg"] - res["theta_energy_lo_deg"] < 15.0
