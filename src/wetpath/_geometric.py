@@ -304,6 +304,24 @@ def _nw_area(verts, faces, d_solid) -> float:
     return float(area[d_solid[faces].mean(axis=1) > 1.0].sum())
 
 
+def _cluster_table(res: dict, k: int, box, voxel_size: float, min_area: float) -> pd.DataFrame:
+    """Rows of one cluster: its points, or one row saying why it has no angle."""
+    is_small = bool(res["area_nw"] < min_area)
+    has_line = len(res["pts"]) > 0
+    if not has_line:
+        res.update(pts=np.full((1, 3), np.nan), theta=np.array([np.nan]),
+                   n_fit=np.zeros(1, int), unresolved=np.array([res["speck"]]))
+    xyz = (res["pts"] + np.array([s.start for s in box], float)) * voxel_size
+    nan = ~np.isfinite(res["theta"])
+    return pd.DataFrame({
+        "cluster": k, "z": xyz[:, 0], "y": xyz[:, 1], "x": xyz[:, 2],
+        "theta_deg": res["theta"], "n_fit": res["n_fit"], "area_nw_vox2": res["area_nw"],
+        "flag_no_contact_line": not has_line and not res["speck"],
+        "flag_unresolved": res["unresolved"],
+        "flag_fit_failed": has_line & nan & ~res["unresolved"],
+        "flag_small_interface": is_small})
+
+
 def geometric_angles(labels: np.ndarray, voxel_size: float = 1.0, *,
                      codes: PhaseCodes | dict | None = None, clusters: np.ndarray | None = None,
                      sigma: float = 1.0, spacing: float = 3.0, fit_radius: float = 10.0,
@@ -372,28 +390,17 @@ def geometric_angles(labels: np.ndarray, voxel_size: float = 1.0, *,
     # the fits use the cluster's own vertices (inside its box); the margin only has to hold the
     # blur (4σ), the solid planes near the line and the solid within band[1] of the interface
     pad = int(math.ceil(max(band[1], 4 * sigma + 4))) + 2
-    frames, small = [], []
-    for k, sl in enumerate(ndimage.find_objects(clusters), start=1):
-        if sl is None:
-            continue
-        box = tuple(slice(max(s.start - pad, 0), min(s.stop + pad, n))
-                    for s, n in zip(sl, lab.shape, strict=True))
-        res = _cluster_angles(lab, clusters, k, box, sigma, spacing, fit_radius, band)
-        is_small = bool(res["area_nw"] < min_interface_vox2)
-        small.append(is_small)
-        has_line = len(res["pts"]) > 0
-        if not has_line:  # one row saying why there is no angle
-            res.update(pts=np.full((1, 3), np.nan), theta=np.array([np.nan]),
-                       n_fit=np.zeros(1, int), unresolved=np.array([res["speck"]]))
-        xyz = (res["pts"] + np.array([s.start for s in box], float)) * voxel_size
-        nan = ~np.isfinite(res["theta"])
-        frames.append(pd.DataFrame({
-            "cluster": k, "z": xyz[:, 0], "y": xyz[:, 1], "x": xyz[:, 2],
-            "theta_deg": res["theta"], "n_fit": res["n_fit"], "area_nw_vox2": res["area_nw"],
-            "flag_no_contact_line": not has_line and not res["speck"],
-            "flag_unresolved": res["unresolved"],
-            "flag_fit_failed": has_line & nan & ~res["unresolved"],
-            "flag_small_interface": is_small}))
+    boxes = {k: tuple(slice(max(s.start - pad, 0), min(s.stop + pad, n))
+                      for s, n in zip(sl, lab.shape, strict=True))
+             for k, sl in enumerate(ndimage.find_objects(clusters), start=1) if sl is not None}
+
+    def one(k):
+        return _cluster_table(_cluster_angles(lab, clusters, k, boxes[k], sigma, spacing,
+                                              fit_radius, band),
+                              k, boxes[k], voxel_size, min_interface_vox2)
+
+    frames = [one(k) for k in boxes]
+    small = [bool(f["flag_small_interface"].iloc[0]) for f in frames]
     if any(small):
         warnings.warn(f"{sum(small)} cluster(s) have an n–w interface below "
                       f"{min_interface_vox2:g} voxel²; their geometric angles are unreliable "
