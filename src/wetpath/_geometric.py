@@ -16,7 +16,8 @@ intersected:
    vertices that lie 2.5σ–9 voxels from the solid within ``fit_radius`` of the point, and a tangent
    plane is fitted to the solid mesh vertices near the point;
 4. the quadric is intersected with the plane, and cos θ_w = ν_s · ν_{w→n} is read there from the
-   quadric's normal and the plane's normal.
+   quadric's normal and the plane's normal. Points whose fitted patch is too thin to extrapolate
+   (an interface that barely rises above the rounded crease) get NaN and ``flag_unresolved``.
 
 The fits are batched over all points of a cluster (normal equations solved with ``numpy.linalg``).
 
@@ -361,7 +362,10 @@ def geometric_angles(labels: np.ndarray, voxel_size: float = 1.0, *,
         unit of ``voxel_size``), ``theta_deg`` (θ through w, degrees; NaN where a fit fails),
         ``n_fit`` (n–w vertices in the fit), ``area_nw_vox2`` (the cluster's n–w area),
         ``flag_no_contact_line`` (a cluster without contact line gets one row with NaN angle),
-        ``flag_fit_failed`` and ``flag_small_interface``.
+        ``flag_unresolved`` (NaN angle: the fitted n–w patch spans less than 1.5 voxels of
+        distance from the solid, e.g. a cap only ~4 voxels high, or a speck erased by smoothing),
+        ``flag_fit_failed`` (NaN angle: no solid plane or no intersection near the point) and
+        ``flag_small_interface``.
 
     Raises
     ------
