@@ -142,6 +142,7 @@ def _increment(before: Mapping, after: Mapping) -> dict:
         "no_nonwetting": g["volume_n"][0] <= 0 or g["volume_n"][1] <= 0,
         "volume_scale": max(abs(d["d_volume_w"]), abs(d["d_volume_n"])),
         "area_ws_scale": max(abs(v) for v in g["area_ws"]),
+        "pore_scale": max(abs(v) for v in g["pore_volume"]),
     }
 
 
@@ -317,7 +318,7 @@ def energy_balance_angle(before: Mapping, after: Mapping, *, large_step: float =
         "flag_mixed_direction": _mixed_direction(blocks, mixed_tol),
         "flag_large_step": bool(np.isfinite(rel) and rel > large_step),
         "flag_volume_not_conserved": bool(ledger > volume_tol * inc["volume_scale"]
-                                          and ledger > 0),
+                                          and ledger > 1e-12 * inc["pore_scale"]),
         "flag_cos_out_of_range": out_of_range,
         "flag_curvature_undefined": kappa_undefined,
         "flag_no_nonwetting": bool(inc["no_nonwetting"]),
