@@ -1,9 +1,11 @@
-"""The embedded demo series: layout of the contract, determinism, and the displacement physics it
-must contain (drainage then imbibition, coalescence, break-up, trapped ganglia, measurable clusters).
+"""The embedded demo series: layout of the contract, determinism, and the displacement physics
+it must contain (drainage then imbibition, coalescence, break-up, trapped ganglia, clusters on
+which contact angles can be measured).
 
-Reference tools, independent of wetpath: ``scipy.ndimage.label`` (clusters), ``numpy`` overlap counts
-(events), ``skimage.filters.threshold_otsu`` (Otsu 1979, IEEE Trans. Syst. Man Cybern. 9, 62–66) and
-``skimage.registration.phase_cross_correlation`` (Guizar-Sicairos et al. 2008, Opt. Lett. 33, 156).
+Reference tools, independent of wetpath: ``scipy.ndimage.label`` (clusters), ``numpy`` overlap
+counts (events), ``skimage.filters.threshold_otsu`` (Otsu 1979, IEEE Trans. Syst. Man Cybern.
+9, 62–66) and ``skimage.registration.phase_cross_correlation`` (Guizar-Sicairos et al. 2008,
+Opt. Lett. 33, 156).
 """
 
 from __future__ import annotations
@@ -20,7 +22,8 @@ from scipy import ndimage
 from wetpath import WetpathError
 from wetpath._demo import write_demo_series
 
-SIZE = 64  # small enough for the test budget; the default (96) is measured in the report
+SIZE = 80  # below the default (96) for the test budget; at 64 the field of view holds too few
+# pores for ganglia that clear its border
 SEED = 2026
 FULL = np.ones((3, 3, 3), dtype=bool)  # 26-connectivity, the project's default for n clusters
 
@@ -89,8 +92,8 @@ def test_layout_follows_the_contract(demo, scenario):
     for folder in ("labels", "grayscale"):
         files = sorted(p.name for p in (demo / folder).glob("step_*.tif"))
         assert files == [f"{n}.tif" for n in names]
-    for key in ("seed", "size", "voxel_size_um", "interfacial_tension_n_per_m", "scenario", "steps"):
-        assert key in scenario
+    keys = ("seed", "size", "voxel_size_um", "interfacial_tension_n_per_m", "scenario", "steps")
+    assert set(keys) <= set(scenario)
     assert scenario["seed"] == SEED and scenario["size"] == SIZE and scenario["synthetic"] is True
     assert [s["step"] for s in scenario["steps"]] == names
     assert {s["kind"] for s in scenario["steps"]} == {"drainage", "imbibition"}
@@ -165,9 +168,10 @@ def test_same_seed_same_bytes_other_seed_other_rock(demo, tmp_path):
     assert files == sorted(p.relative_to(again) for p in again.rglob("*") if p.is_file())
     for f in files:
         assert (demo / f).read_bytes() == (again / f).read_bytes(), f
-    other = write_demo_series(tmp_path / "other", seed=SEED + 1, size=SIZE, grayscale=False)
+    one = write_demo_series(tmp_path / "one", seed=SEED, size=48, grayscale=False)
+    other = write_demo_series(tmp_path / "other", seed=SEED + 1, size=48, grayscale=False)
     assert not (other / "grayscale").exists()
-    a = tifffile.imread(demo / "labels" / "step_000.tif")
+    a = tifffile.imread(one / "labels" / "step_000.tif")
     b = tifffile.imread(other / "labels" / "step_000.tif")
     assert np.mean(a != b) > 0.1
 
@@ -210,7 +214,8 @@ def test_wet_scans_are_shifted_and_show_three_phases(demo, labels, scenario):
     fov = labels[0] > 0
     inner = ndimage.binary_erosion(fov, iterations=4)
     # compare inside the cylinder: its fixed edge would pin a correlation peak at zero shift
-    box = (slice(6, -6), slice(13, -13), slice(13, -13))
+    side = int(SIZE / 2 - (SIZE - 1) / (2 * np.sqrt(2))) + 2  # within the square inside the disc
+    box = (slice(6, -6), slice(side, -side), slice(side, -side))
     solid = (labels[0] == 1).astype(np.float64)
     for k in (0, len(labels) // 2, len(labels) - 1):
         wet = tifffile.imread(demo / "grayscale" / f"step_{k:03d}.tif").astype(np.float64)

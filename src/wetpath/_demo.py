@@ -1,45 +1,50 @@
 """The embedded demo series: an invented, fully synthetic drainage–imbibition experiment.
 
-Scenario (invented, synthetic; no real sample, fluid, laboratory or measurement is behind it): a plug of
-*Hollin Brae sandstone*, a fine-grained quartz arenite from an imaginary quarry, scanned in a flow cell at
-the imaginary *Carrow Pore Imaging Laboratory*. The plug is first saturated with *KB-4 brine* (a made-up
-brine doped with potassium iodide for X-ray contrast, the wetting phase), then *Lumen-12* (a made-up
-refined model oil, the non-wetting phase) is injected from the bottom face (z = 0) while brine leaves
-through a water-wet plate at the top face (primary drainage). The pressure is then reversed: brine comes
-back through the top and the oil retreats through the bottom (imbibition), leaving trapped ganglia.
-A micro-CT scan of a cylindrical field of view (axis z) is taken every few minutes.
+Scenario (invented and synthetic: no real sample, fluid, laboratory or measurement is behind it):
+a plug of *Hollin Brae sandstone*, a fine-grained quartz arenite from an imaginary quarry, is
+scanned in a flow cell at the imaginary *Carrow Pore Imaging Laboratory*. Saturated with *KB-4
+brine* (made up; doped with potassium iodide for X-ray contrast; the wetting phase), it is drained
+by *Lumen-12* (a made-up refined model oil, the non-wetting phase) injected at the bottom face
+(z = 0) while brine leaves through a water-wet plate at the top face. The pressure is then
+reversed: brine comes back through the top and the oil retreats through the bottom (imbibition),
+leaving trapped ganglia. A cylindrical field of view (axis z) is scanned every few minutes.
 
-How the data are made (everything is computed here, from a seed):
+How the data are made (all computed here, from a seed):
 
-* **Rock**: random sequential placement of ellipsoidal grains (log-normal equivalent radii, 6–12 voxels)
-  that may overlap by up to ``1 - _GRAIN_GAP`` of their radii, then a uniform quartz overgrowth (all pore
-  voxels within a distance d of a grain become solid, d chosen for the target porosity): a cemented
-  grain pack.
-* **Primary drainage**: pore-morphology invasion (Hilpert & Miller 2001) generalised to a contact angle
-  θ_w (full-morphology rule of Schulz et al. 2007): at capillary radius R, balls of radius R whose
-  centres lie at least R cos θ_w from the solid and are connected to the inlet face are filled with oil;
-  a ball whose centre lies R cos θ_w from a flat wall meets it at θ_w through the brine. R decreases step
-  by step (capillary pressure P_c = 2σ/R rises); oil never recedes; brine that loses its connection to
-  the outlet face is trapped and stays.
-* **Imbibition**: the same rule with a larger (advancing) angle and increasing R; oil can only recede.
-  Oil cut off from the inlet face (where it leaves) by brine filling a throat is trapped and stays
-  as it was: snap-off-like break-up into disconnected ganglia.
-* The process is followed on a fine ladder of radii; the scans are snapshots of it, chosen for roughly
-  even saturation steps, so that fingers coalesce and oil breaks up *between* scans.
-* **Grayscale variant**: a dry reference scan (grain vs air) and one wet scan per step with three grey
-  levels (grain, brine, oil), point-spread blur, signal-dependent (Poisson-like) plus Gaussian noise,
-  small beam-intensity drift and a small rigid sub-voxel translation of the sample between scans.
-  The labels are in the frame of the dry scan.
+* **Rock**: ellipsoidal grains (log-normal equivalent radii clipped to 6–12 voxels, axis ratios
+  0.8–1, random orientations) placed by random sequential addition with centres at least
+  ``_GRAIN_GAP (r_i + r_j)`` apart (overlapping, sutured contacts) until the porosity is
+  ``_LOOSE_POROSITY``; then cement fills the pore voxels with the most grain around them (contacts
+  and crevices first) until the porosity is ``_POROSITY``.
+* **Primary drainage**: pore-morphology invasion (Hilpert & Miller 2001) with a contact angle
+  (full-morphology rule, Schulz et al. 2007): at capillary radius R, oil fills the balls of radius R
+  whose centres lie at least R cos θ_r from the solid and are connected to the inlet face. A ball
+  whose centre is R cos θ from a flat wall meets it at θ through the brine, and its free surface has
+  total curvature κ = 2/R, so the design capillary pressure is P_c = 2σ/R. R falls step by step; oil
+  never recedes; brine that loses its connection to the outlet face is trapped and stays.
+* **Imbibition**: the same rule with the advancing angle θ_a and rising R; oil can only recede,
+  and oil cut off from the inlet face (where it leaves) by brine filling a throat is trapped and
+  kept as it was: snap-off-like break-up into disconnected ganglia.
+* The process runs on a fine ladder of radii; where one radius opens a large region (a Haines-type
+  jump) the region is filled in its order of arrival, as a rate-controlled pump fills it. The scans
+  are snapshots of this path at roughly even saturation steps, so that invading fingers coalesce
+  and the oil breaks up *between* scans.
+* **Grayscale variant**: a dry reference scan (grain vs air) and one wet scan per step with three
+  grey levels (grain, brine, oil), point-spread blur, signal-dependent (Poisson-like) plus Gaussian
+  noise, a ±1 % beam-intensity drift and a small rigid sub-voxel translation of the sample between
+  scans. The labels are in the frame of the dry scan.
 
-Everything is deterministic by seed: the same seed and size give byte-identical files.
+The rock and fluids are simulated in the whole cubic box; the field of view is the inscribed
+cylinder, so clusters leave and enter it as a real scan would show them. Everything is
+deterministic by seed: the same seed and size give byte-identical files.
 
 References
 ----------
-Hilpert, M. & Miller, C. T. (2001). Pore-morphology-based simulation of drainage in totally wetting
-porous media. *Advances in Water Resources* 24, 243–255.
-Schulz, V. P., Becker, J., Wiegmann, A., Mukherjee, P. P. & Wang, C.-Y. (2007). Modeling of two-phase
-behavior in the gas diffusion medium of PEFCs via full morphology approach. *Journal of the
-Electrochemical Society* 154(4), B419–B426.
+Hilpert, M. & Miller, C. T. (2001). Pore-morphology-based simulation of drainage in totally
+wetting porous media. *Advances in Water Resources* 24, 243–255.
+Schulz, V. P., Becker, J., Wiegmann, A., Mukherjee, P. P. & Wang, C.-Y. (2007). Modeling of
+two-phase behavior in the gas diffusion medium of PEFCs via full morphology approach. *Journal of
+the Electrochemical Society* 154(4), B419–B426.
 """
 
 from __future__ import annotations
@@ -60,12 +65,13 @@ from ._errors import WetpathError
 __all__ = ["DemoSeries", "demo_series", "write_demo_series"]
 
 SCENARIO_TEXT = (
-    "Synthetic demo, invented scenario: a plug of Hollin Brae sandstone (an imaginary fine-grained "
-    "quartz arenite) in the flow cell of the imaginary Carrow Pore Imaging Laboratory. Saturated with "
-    "KB-4 brine (made-up, KI-doped, wetting), it is drained by Lumen-12 model oil (made-up, non-wetting) "
-    "injected at the bottom face (z = 0), brine leaving at the top; the pressure is then reversed and "
-    "brine imbibes from the top while the oil retreats through the bottom, leaving trapped ganglia. "
-    "All images are computed by wetpath's demo generator; no real sample or measurement is behind them."
+    "Synthetic demo, invented scenario: a plug of Hollin Brae sandstone (an imaginary "
+    "fine-grained quartz arenite) in the flow cell of the imaginary Carrow Pore Imaging "
+    "Laboratory. Saturated with KB-4 brine (made-up, KI-doped, wetting), it is drained by Lumen-12 "
+    "model oil (made-up, non-wetting) injected at the bottom face (z = 0), brine leaving at the "
+    "top; the pressure is then reversed and brine imbibes from the top while the oil retreats "
+    "through the bottom, leaving trapped ganglia. All images are computed by wetpath's demo "
+    "generator; no real sample or measurement is behind them."
 )
 
 VOXEL_SIZE_UM = 5.0
@@ -81,7 +87,7 @@ _GRAIN_RADIUS_RANGE = (6.0, 12.0)
 _GRAIN_GAP = 0.8  # centres at least 0.8 (r_i + r_j) apart: grains overlap (sutured contacts)
 _LOOSE_POROSITY = 0.37  # porosity of the grain framework before cementation
 _CEMENT_SIGMA = 1.5  # voxels, neighbourhood that decides where cement grows
-_DRAINAGE_STEP = 0.2  # voxels between successive capillary radii of the quasi-static drainage
+_DRAINAGE_STEP = 0.25  # voxels between successive capillary radii of the quasi-static drainage
 _IMBIBITION_STEP = 0.5  # voxels between successive capillary radii of imbibition
 _MAX_DSW = 0.05  # largest saturation change between successive states of the fine path
 _R_MIN = 1.5  # voxels, smallest capillary radius of drainage
@@ -103,8 +109,8 @@ class DemoSeries:
     Attributes
     ----------
     labels : list of ndarray of uint8
-        One canonical label volume per step, shape (z, y, x): 0 outside the cylindrical field of view,
-        1 solid, 2 brine (wetting), 3 oil (non-wetting).
+        One canonical label volume per step, shape (z, y, x): 0 outside the cylindrical field
+        of view, 1 solid, 2 brine (wetting), 3 oil (non-wetting).
     times_s : ndarray of float
         Scan times in seconds from the first scan.
     kinds : list of str
@@ -146,7 +152,7 @@ def _random_rotation(rng: np.random.Generator) -> np.ndarray:
 
 def _render_ellipsoid(solid: np.ndarray, c: np.ndarray, r: float,
                       rng: np.random.Generator) -> None:
-    """Add a randomly oriented ellipsoid of equivalent radius ``r`` centred at ``c`` to ``solid``."""
+    """Add a randomly oriented ellipsoid of equivalent radius ``r`` at ``c`` to ``solid``."""
     axes = np.array([1.0, rng.uniform(0.8, 1.0), rng.uniform(0.8, 1.0)])
     axes *= r / np.cbrt(axes.prod())
     rot = _random_rotation(rng)
@@ -245,9 +251,9 @@ def _arrival_order(target: np.ndarray, sources: np.ndarray) -> np.ndarray:
     rows, cols = [], []
     for dz, dy, dx in [(a, b, c) for a in (0, 1) for b in (-1, 0, 1) for c in (-1, 0, 1)
                        if (a, b, c) > (0, 0, 0)]:
-        src = node[:node.shape[0] - dz, max(-dy, 0):node.shape[1] - max(dy, 0),
-                   max(-dx, 0):node.shape[2] - max(dx, 0)]
-        dst = node[dz:, max(dy, 0):node.shape[1] - max(-dy, 0), max(dx, 0):node.shape[2] - max(-dx, 0)]
+        ny, nx = node.shape[1:]
+        src = node[:node.shape[0] - dz, max(-dy, 0):ny - max(dy, 0), max(-dx, 0):nx - max(dx, 0)]
+        dst = node[dz:, max(dy, 0):ny - max(-dy, 0), max(dx, 0):nx - max(-dx, 0)]
         both = (src >= 0) & (dst >= 0)
         rows.append(src[both])
         cols.append(dst[both])
@@ -263,19 +269,18 @@ def _arrival_order(target: np.ndarray, sources: np.ndarray) -> np.ndarray:
     return flat[order]
 
 
-def _drainage(pore: np.ndarray, fov: np.ndarray, r_start: float,
+def _drainage(pore: np.ndarray, dist: np.ndarray, fov: np.ndarray, r_start: float,
               cos_theta: float) -> tuple[list[float], list[np.ndarray]]:
     """Primary drainage with trapping of brine (Hilpert & Miller 2001; contact angle as in Schulz
     et al. 2007).
 
     The capillary radius falls by ``_DRAINAGE_STEP`` from ``r_start`` until the brine saturation
-    in the field of view ``fov`` is at most ``_SW_END_DRAINAGE``. Where one radius opens more pore space than
-    ``_MAX_DSW`` of saturation (a Haines-type jump), the newly reachable ball centres are filled in
-    their order of arrival from the oil already in place, as a rate-controlled pump would fill them;
-    every front is still made of balls of radius R. Returns the radius and the oil (True) of every
-    state that differs from the one before.
+    in the field of view ``fov`` is at most ``_SW_END_DRAINAGE``. Where one radius opens more pore
+    space than ``_MAX_DSW`` of saturation (a Haines-type jump), the newly reachable ball centres
+    are filled in their order of arrival from the oil already in place, as a rate-controlled pump
+    would fill them; every front is still made of balls of radius R. Returns the radius and the
+    oil (True) of every state that differs from the one before.
     """
-    dist = ndimage.distance_transform_edt(pore)
     pore_fov = np.count_nonzero(pore & fov)
     inlet = np.zeros_like(pore)
     inlet[0] = True
@@ -311,25 +316,32 @@ def _drainage(pore: np.ndarray, fov: np.ndarray, r_start: float,
     return radii, states
 
 
-def _imbibition(pore: np.ndarray, oil: np.ndarray, r_start: float,
+def _imbibition(dist: np.ndarray, fov: np.ndarray, oil: np.ndarray, r_start: float,
                 cos_theta: float) -> tuple[list[float], list[np.ndarray]]:
-    """Imbibition on a ladder of capillary radii rising by ``_IMBIBITION_STEP`` from ``r_start`` until no
-    connected oil is left: oil can only recede, and oil that loses its connection to the inlet face
-    is trapped and kept as it was. Returns the radii and the oil after each."""
-    dist = ndimage.distance_transform_edt(pore)
+    """Imbibition on a ladder of capillary radii rising from ``r_start`` until no connected oil is
+    left: oil can only recede, and oil that loses its connection to the inlet face is trapped and
+    kept as it was. The radius rises by ``_IMBIBITION_STEP``, or by a half, quarter or eighth of it
+    where a full step would change the brine saturation in ``fov`` by more than ``_MAX_DSW``.
+    Returns the radii and the oil after each."""
+    pore_fov = np.count_nonzero(dist[fov] > 0)
     mobile = oil.copy()
     trapped = np.zeros_like(oil)
     radii, states = [], []
-    r = r_start
+    r, step = r_start, _IMBIBITION_STEP
     while mobile.any():
-        centres = (dist >= r * cos_theta) & mobile
-        remaining = _balls(centres, r) & mobile
+        centres = (dist >= (r + step) * cos_theta) & mobile
+        remaining = _balls(centres, r + step) & mobile
+        receded = np.count_nonzero((mobile & ~remaining)[fov]) / pore_fov
+        if receded > _MAX_DSW and step > _IMBIBITION_STEP / 8:
+            step /= 2
+            continue
+        r += step
+        step = _IMBIBITION_STEP
         connected = _touching(remaining, 0)
         trapped |= remaining & ~connected
         mobile = connected
         radii.append(r)
         states.append(mobile | trapped)
-        r += _IMBIBITION_STEP
     return radii, states
 
 
@@ -371,7 +383,13 @@ def demo_series(seed: int = 2026, size: int = 96) -> DemoSeries:
         raise WetpathError(f"demo size must be at least 48 voxels, got {size}", step="demo")
     size = int(size)
     rock_rng, time_rng = (np.random.default_rng(s) for s in np.random.SeedSequence(seed).spawn(2))
-    solid = grain_pack(size, rock_rng)
+    # the rock is made larger than the image so that distances near the faces see the grains
+    # beyond them: a face of the image is a cut through the rock
+    pad = 8
+    rock = grain_pack(size + 2 * pad, rock_rng)
+    inside = (slice(pad, -pad),) * 3
+    dist = ndimage.distance_transform_edt(~rock)[inside]
+    solid = rock[inside]
     pore = ~solid
     fov = cylinder_fov(solid.shape)
     pore_fov = pore & fov
@@ -382,12 +400,12 @@ def demo_series(seed: int = 2026, size: int = 96) -> DemoSeries:
     cos_r = math.cos(math.radians(THETA_RECEDING_DEG))
     cos_a = math.cos(math.radians(THETA_ADVANCING_DEG))
     # the ladder starts where the first ball fits at the inlet face
-    r0 = float(ndimage.distance_transform_edt(pore)[0].max()) / cos_r
-    d_radii, d_states = _drainage(pore, fov, r0, cos_r)
+    r0 = float(dist[0].max()) / cos_r
+    d_radii, d_states = _drainage(pore, dist, fov, r0, cos_r)
     d_sat = np.array([sat_w(s) for s in d_states])
     d_pick = _pick(d_sat, np.linspace(1.0, d_sat[-1], N_DRAINAGE_SCANS + 1)[1:])
     # imbibition changes nothing until R cos θ_a passes the last drainage R cos θ_r
-    i_radii, i_states = _imbibition(pore, d_states[-1], d_radii[-1] * cos_r / cos_a, cos_a)
+    i_radii, i_states = _imbibition(dist, fov, d_states[-1], d_radii[-1] * cos_r / cos_a, cos_a)
     i_sat = np.array([sat_w(s) for s in i_states])
     i_pick = _pick(-i_sat, -np.linspace(d_sat[-1], i_sat[-1], N_IMBIBITION_SCANS + 1)[1:])
 
@@ -409,7 +427,7 @@ def demo_series(seed: int = 2026, size: int = 96) -> DemoSeries:
     # scans every few minutes; a longer pause while the pumps are reversed
     gaps = np.round(time_rng.uniform(200.0, 420.0, len(oils) - 1), 1)
     gaps[len(d_pick)] += round(float(time_rng.uniform(1200.0, 2400.0)), 1)
-    times = np.concatenate([[0.0], np.cumsum(gaps)])
+    times = np.round(np.concatenate([[0.0], np.cumsum(gaps)]), 1)
     return DemoSeries(labels=labels, times_s=times, kinds=kinds, capillary_radius_vox=radii,
                       solid=solid, fov=fov, phases_box=phases_box)
 
@@ -473,7 +491,8 @@ def _write_tiff(path: Path, data: np.ndarray, *, compress: bool) -> None:
 
 
 def _write_times(path: Path, names: list[str], times: np.ndarray) -> None:
-    lines = ["step,time_s,file"] + [f"{n},{t:.1f},{n}.tif" for n, t in zip(names, times, strict=True)]
+    rows = [f"{n},{t:.1f},{n}.tif" for n, t in zip(names, times, strict=True)]
+    lines = ["step,time_s,file", *rows]
     path.write_text("\n".join(lines) + "\n")
 
 
@@ -482,10 +501,11 @@ def write_demo_series(out_dir: str | os.PathLike, *, seed: int = 2026, size: int
     """Generate the demo series and write it to ``out_dir`` (atomically).
 
     Layout: ``labels/step_NNN.tif`` (uint8 multi-page TIFF, z pages, canonical codes) with
-    ``labels/times.csv`` (columns ``step,time_s,file``; ``step`` is the step name, ``file`` relative
-    to the folder); with ``grayscale``, ``grayscale/dry.tif`` and ``grayscale/step_NNN.tif`` (uint16)
-    with their ``times.csv``; and ``scenario.json`` (seed, size, voxel size, interfacial tension,
-    per-step kind, design capillary radius and pressure, scan shifts, the scenario text).
+    ``labels/times.csv`` (columns ``step,time_s,file``; ``step`` is the step name, ``file``
+    relative to the folder); with ``grayscale``, ``grayscale/dry.tif`` and
+    ``grayscale/step_NNN.tif`` (uint16) with their ``times.csv``; and ``scenario.json`` (seed,
+    size, voxel size, interfacial tension, per-step kind, design capillary radius and pressure,
+    scan shifts, the scenario text).
 
     Parameters
     ----------
