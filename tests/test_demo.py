@@ -202,7 +202,9 @@ def test_dry_scan_otsu_recovers_the_solid(demo, labels):
     solid = dry > threshold_otsu(dry[fov])
     accuracy = np.mean(solid[fov] == (labels[0][fov] == 1))
     assert accuracy > 0.97, accuracy
-    assert accuracy < 1.0  # noise and blur are there: the task is not trivial
+    # the scan is noisy: grey levels inside the grains spread by more than 2 % of their mean
+    core = ndimage.binary_erosion(labels[0] == 1, iterations=2)
+    assert dry[core].std() > 0.02 * dry[core].mean()
 
 
 def test_wet_scans_are_shifted_and_show_three_phases(demo, labels, scenario):
@@ -216,12 +218,18 @@ def test_wet_scans_are_shifted_and_show_three_phases(demo, labels, scenario):
     # compare inside the cylinder: its fixed edge would pin a correlation peak at zero shift
     side = int(SIZE / 2 - (SIZE - 1) / (2 * np.sqrt(2))) + 2  # within the square inside the disc
     box = (slice(6, -6), slice(side, -side), slice(side, -side))
-    solid = (labels[0] == 1).astype(np.float64)
     for k in (0, len(labels) // 2, len(labels) - 1):
         wet = tifffile.imread(demo / "grayscale" / f"step_{k:03d}.tif").astype(np.float64)
-        # the declared translation fits the grains better than no shift or half a voxel off
-        def fit(shift, wet=wet):
-            moved = ndimage.shift(solid, shift, order=1)
+        # a noiseless scene painted from the labels with each phase's median grey in the scan
+        paint = np.zeros(4)
+        for p in (1, 2, 3):
+            if (labels[k] == p).any():
+                paint[p] = np.median(wet[labels[k] == p])
+        scene = paint[labels[k]]
+
+        # the declared translation fits the scan better than no shift or half a voxel off
+        def fit(shift, wet=wet, scene=scene):
+            moved = ndimage.shift(scene, shift, order=1)
             return np.corrcoef(moved[box].ravel(), wet[box].ravel())[0, 1]
 
         best = fit(shifts[k])
@@ -234,4 +242,4 @@ def test_wet_scans_are_shifted_and_show_three_phases(demo, labels, scenario):
         np.testing.assert_allclose(found, shifts[k], atol=0.5)
         back = ndimage.shift(wet, -shifts[k], order=1)
         means = [back[inner & (labels[k] == p)].mean() for p in (1, 2, 3) if (labels[k] == p).any()]
-        assert means == sorted(means, reverse=True)  # grain brighter than brine, brine than oil
+        assert means == sorted(means, reverse=True)  # grain brightest, then brine, then oil

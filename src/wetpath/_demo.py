@@ -30,9 +30,9 @@ How the data are made (all computed here, from a seed):
   are snapshots of this path at roughly even saturation steps, so that invading fingers coalesce
   and the oil breaks up *between* scans.
 * **Grayscale variant**: a dry reference scan (grain vs air) and one wet scan per step with three
-  grey levels (grain, brine, oil), point-spread blur, signal-dependent (Poisson-like) plus Gaussian
-  noise, a ±1 % beam-intensity drift and a small rigid sub-voxel translation of the sample between
-  scans. The labels are in the frame of the dry scan.
+  grey levels (grain brightest, then brine, then oil), point-spread blur, signal-dependent
+  (Poisson-like) plus Gaussian noise, a ±1 % beam-intensity drift and a small rigid sub-voxel
+  translation of the sample between scans. The labels are in the frame of the dry scan.
 
 The rock and fluids are simulated in the whole cubic box; the field of view is the inscribed
 cylinder, so clusters leave and enter it as a real scan would show them. Everything is
@@ -94,9 +94,10 @@ _R_MIN = 1.5  # voxels, smallest capillary radius of drainage
 _SW_END_DRAINAGE = 0.25  # drainage stops at this brine saturation (field of view)
 _STRUCT26 = np.ones((3, 3, 3), dtype=bool)
 
-# grey levels (uint16 counts) of the invented scanner: dry pore (air), grain, brine, oil
-_GREY = {"air": 7000.0, "grain": 32000.0, "brine": 21000.0, "oil": 12000.0}
-_BLUR_SIGMA = 0.7  # voxels, point-spread function
+# grey levels (uint16 counts) of the invented scanner: dry pore (air), grain, brine, oil; the grain
+# is the brightest phase in the dry and the wet scans alike, so that they can be registered
+_GREY = {"air": 7000.0, "grain": 32000.0, "brine": 22000.0, "oil": 12000.0}
+_BLUR_SIGMA = 0.5  # voxels, point-spread function
 _NOISE_GAIN = 60.0  # variance per count (Poisson-like part)
 _NOISE_FLOOR = 600.0  # counts, Gaussian read-out part
 _MAX_SHIFT = 2.5  # voxels, largest rigid translation of a wet scan from the dry frame
@@ -591,6 +592,11 @@ def _scenario(series: DemoSeries, names: list[str], seed: int, size: int,
         "nonwetting_fluid": "Lumen-12 model oil (invented)",
         "theta_receding_design_deg": THETA_RECEDING_DEG,
         "theta_advancing_design_deg": THETA_ADVANCING_DEG,
+        "design_note": "the invasion rule makes menisci meet flat solid at the design angles and "
+                       "gives every meniscus of a scan the total curvature 2/R of its capillary "
+                       "radius R (design_pc_pa = 2 sigma / R); on curved grains and after "
+                       "voxelisation the measured angles differ, and trapped ganglia keep the "
+                       "curvature of the scan in which they were cut off",
         "field_of_view": "cylinder, axis z, inscribed in the y-x square; 0 outside",
         "phase_codes": {"excluded": 0, "solid": 1, "wetting": 2, "nonwetting": 3},
         "grayscale_frame": "labels are in the frame of grayscale/dry.tif; wet scan k shows the "
