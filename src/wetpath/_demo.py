@@ -173,15 +173,28 @@ def grain_pack(size: int, rng: np.random.Generator, *, porosity: float = _POROSI
 
     Grains are placed by random sequential addition, centres at least ``_GRAIN_GAP (r_i + r_j)``
     apart (log-normal equivalent radii clipped to 6–12 voxels), as randomly oriented ellipsoids
-    (axis ratios 0.8–1), until the porosity falls to
-    ``_LOOSE_POROSITY``; then cement fills the pore voxels with the largest share of grain in a
-    Gaussian neighbourhood (grain contacts and crevices first) until the porosity of the box is
-    ``porosity``.
+    (axis ratios 0.8–1), until the porosity falls to ``_LOOSE_POROSITY``; then cement fills the
+    pore voxels with the largest share of grain in a Gaussian neighbourhood (grain contacts and
+    crevices first) until the porosity of the box is ``porosity``.
+
+    Parameters
+    ----------
+    size : int
+        Edge of the cube in voxels.
+    rng : numpy.random.Generator
+        Source of every random choice.
+    porosity : float
+        Porosity of the cemented pack (fraction of the box).
 
     Returns
     -------
     ndarray of bool
         True for solid, shape (size, size, size).
+
+    References
+    ----------
+    Random sequential addition: Widom, B. (1966). Random sequential addition of hard spheres to a
+    volume. *Journal of Chemical Physics* 44, 3888–3894 (cited from memory).
     """
     lo_r, hi_r = _GRAIN_RADIUS_RANGE
     margin = hi_r
