@@ -132,6 +132,7 @@ def test_drainage_then_imbibition(labels, scenario):
     assert kinds == ["drainage"] * n_drain + ["imbibition"] * (len(kinds) - n_drain)
     assert 7 <= n_drain <= 9 and 5 <= len(kinds) - n_drain <= 7
     sw = np.array([_saturation_w(lab) for lab in labels])
+    np.testing.assert_allclose([s["saturation_w"] for s in scenario["steps"]], sw, atol=1e-6)
     assert sw[0] == 1.0  # brine-saturated before the oil arrives
     assert np.all(np.diff(sw[:n_drain]) < 0)
     assert np.all(np.diff(sw[n_drain - 1:]) > 0)

@@ -581,13 +581,15 @@ def write_demo_series(out_dir: str | os.PathLike, *, seed: int = 2026, size: int
 def _scenario(series: DemoSeries, names: list[str], seed: int, size: int,
               shifts: np.ndarray | None) -> dict:
     steps = []
-    for k, name in enumerate(names):
+    for k, (name, lab) in enumerate(zip(names, series.labels, strict=True)):
         r = series.capillary_radius_vox[k]
         pc = None if r is None else 2 * INTERFACIAL_TENSION_N_PER_M / (r * VOXEL_SIZE_UM * 1e-6)
         steps.append({
             "step": name,
             "time_s": float(series.times_s[k]),
             "kind": series.kinds[k],
+            "saturation_w": round(float(np.count_nonzero(lab == WETTING)
+                                        / np.count_nonzero(lab >= WETTING)), 6),
             "capillary_radius_um": None if r is None else round(r * VOXEL_SIZE_UM, 3),
             "design_pc_pa": None if pc is None else round(pc, 1),
             "grayscale_shift_zyx_vox": None if shifts is None else [float(s) for s in shifts[k]],
@@ -599,6 +601,8 @@ def _scenario(series: DemoSeries, names: list[str], seed: int, size: int,
         "seed": int(seed),
         "size": int(size),
         "shape_zyx": list(series.labels[0].shape),
+        "porosity": round(float(np.count_nonzero(series.labels[0] >= WETTING)
+                                / np.count_nonzero(series.labels[0])), 6),
         "voxel_size_um": VOXEL_SIZE_UM,
         "interfacial_tension_n_per_m": INTERFACIAL_TENSION_N_PER_M,
         "wetting_fluid": "KB-4 brine (invented)",
