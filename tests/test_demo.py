@@ -177,7 +177,7 @@ def test_same_seed_same_bytes_other_seed_other_rock(demo, tmp_path):
     assert np.mean(a != b) > 0.1
 
 
-def test_rewrites_an_earlier_demo_but_not_other_folders(demo, tmp_path):
+def test_rewrites_an_earlier_demo_but_not_other_folders(tmp_path):
     target = write_demo_series(tmp_path / "d", seed=3, size=48, grayscale=False)
     write_demo_series(target, seed=4, size=48, grayscale=False)
     assert json.loads((target / "scenario.json").read_text())["seed"] == 4
