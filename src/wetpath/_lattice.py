@@ -299,7 +299,7 @@ def iter_slabs(src: _Source, depth: int,
         if src.is_numpy and lo >= 0 and hi <= nz:
             yield a, b, conv(src.read(lo, hi))
             continue
-        zero = np.zeros((1,) + src.shape[1:], np.uint8)
+        zero = np.zeros((1,) + src.shape[1:], np.uint8 if convert else src.dtype)
         parts = [zero] if lo < 0 else []
         start = max(lo, 0)
         if carry is not None and carry_at == lo:
