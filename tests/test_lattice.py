@@ -88,10 +88,12 @@ def test_tilted_plane_bias_range(normal):
 
 def _crofton_plane_factor(n):
     dirs = [(1, 0, 0), (0, 1, 0), (0, 0, 1)]
-    dirs += [(1, s, 0) for s in (1, -1)] + [(1, 0, s) for s in (1, -1)] + [(0, 1, s) for s in (1, -1)]
+    dirs += [(1, s, 0) for s in (1, -1)] + [(1, 0, s) for s in (1, -1)]
+    dirs += [(0, 1, s) for s in (1, -1)]
     dirs += [(1, s, t) for s in (1, -1) for t in (1, -1)]
     weights = [0.0915558] * 3 + [0.0739613] * 6 + [0.0703913] * 4   # METHODS.md §1
-    return sum(2 * w * abs(np.dot(n, synthetic.unit(d))) for d, w in zip(dirs, weights, strict=True))
+    return sum(2 * w * abs(np.dot(n, synthetic.unit(d)))
+               for d, w in zip(dirs, weights, strict=True))
 
 
 def _plane_area_in_box(n, c, lo, hi):
@@ -150,7 +152,8 @@ def test_phase_volumes_and_blocks(medium160):
     assert r["porosity"] == pytest.approx(np.isin(m, (2, 3)).mean())
     b = r["blocks"]
     assert len(b) == 27
-    for k in ("bulk_volume", "pore_volume", "volume_w", "volume_n", "area_nw", "area_ws", "area_ns"):
+    for k in ("bulk_volume", "pore_volume", "volume_w", "volume_n", "area_nw", "area_ws",
+              "area_ns"):
         assert b[k].sum() == pytest.approx(r[k], rel=1e-12)
     # block (0, 0, 0) holds the voxels [0, 64)³ exactly
     first = b[(b.block_z == 0) & (b.block_y == 0) & (b.block_x == 0)].iloc[0]

@@ -84,7 +84,8 @@ def _remap(local, lut, offset):
 def _face_pairs(lower: np.ndarray, upper: np.ndarray, connectivity: int) -> np.ndarray:
     """(k, 2) provisional id pairs adjacent across a z face (lower plane z−1, upper plane z)."""
     ny, nx = lower.shape
-    offsets = [(0, 0)] if connectivity == 6 else [(dy, dx) for dy in (-1, 0, 1) for dx in (-1, 0, 1)]
+    steps = (0,) if connectivity == 6 else (-1, 0, 1)
+    offsets = [(dy, dx) for dy in steps for dx in steps]
     pairs = []
     for dy, dx in offsets:
         lo = lower[max(0, -dy):ny - max(0, dy), max(0, -dx):nx - max(0, dx)]
@@ -108,8 +109,8 @@ def label_clusters(labels, *, connectivity: int = 26, chunks=None, threads: int 
     connectivity : {26, 6}
         Voxel adjacency of a cluster.
     chunks : int or tuple, optional
-        Slab depth in planes; default the chunk depth of ``out`` (zarr), else of ``labels``, else 64.
-        The result does not depend on it.
+        Slab depth in planes; default the chunk depth of ``out`` (zarr), else of ``labels``,
+        else 64. The result does not depend on it.
     threads : int, optional
         Worker threads (None: all cores).
     out : ndarray or zarr array, optional

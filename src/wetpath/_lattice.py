@@ -1,4 +1,4 @@
-"""Streaming 2×2×2 configuration histogram: phase volumes, Crofton pair areas, Euler characteristics.
+"""Streaming 2×2×2 configuration histogram: volumes, Crofton pair areas, Euler characteristics.
 
 One pass over a canonical label volume (0 excluded, 1 solid, 2 wetting, 3 non-wetting) counts the
 4⁸ = 65 536 possible configurations of the eight voxels of every 2×2×2 lattice cube. Volumes,
@@ -8,11 +8,12 @@ tables, exactly and independently of how the volume was cut into slabs.
 Conventions
 -----------
 * Axis order (z, y, x); lengths in the unit of ``voxel_size`` (isotropic).
-* **Image border**: the array is surrounded by a virtual layer of excluded voxels. Cubes are indexed
-  by their origin o ∈ [−1, N−1] along each axis, so every voxel is the far corner (o + 1) of exactly
-  one cube and every lattice pair of real voxels lies in all the cubes that can hold it. Excluded and
-  virtual voxels belong to no phase: no volume, no pair, and they are "not the phase" for χ. This is
-  the zero padding that :func:`skimage.measure.euler_number` applies, so χ matches it on the array.
+* **Image border**: the array is surrounded by a virtual layer of excluded voxels. Cubes are
+  indexed by their origin o ∈ [−1, N−1] along each axis, so every voxel is the far corner (o + 1)
+  of exactly one cube and every lattice pair of real voxels lies in all the cubes that can hold it.
+  Excluded and virtual voxels belong to no phase: no volume, no pair, and they are "not the phase"
+  for χ. This is the zero padding that :func:`skimage.measure.euler_number` applies, so χ matches
+  it on the array.
 * **Slabs**: the volume is streamed as z-slabs of ``chunks`` planes (whole y, x extent) with a
   one-plane halo carried over from the previous slab, so each stored chunk is decoded once and peak
   memory is a few slabs. A cube belongs to the slab holding its far corner; counts are integers, so
@@ -58,8 +59,9 @@ BLOCK_COLUMNS = ["block", "block_z", "block_y", "block_x", "bulk_volume", "pore_
 CUBE_CORNERS = np.array([((s >> 1) & 1, s & 1, s >> 2) for s in range(8)], dtype=np.int64)
 _FAR_CORNER = int(np.flatnonzero((CUBE_CORNERS == 1).all(axis=1))[0])
 
-# Crofton direction classes: (lattice length |v|, weight W per ± direction, cubes holding one pair).
-# Weights: Schladitz, Ohser & Nagel (2006) as quoted in METHODS.md §1; they sum to 1 over 13 directions.
+# Crofton direction classes: (lattice length |v|, weight W per ± direction, cubes holding a pair).
+# Weights: Schladitz, Ohser & Nagel (2006) as quoted in METHODS.md §1; they sum to 1 over the 13
+# directions.
 _CLASSES = ((1.0, 0.0915558, 4), (math.sqrt(2.0), 0.0739613, 2), (math.sqrt(3.0), 0.0703913, 1))
 _PAIR_TYPES = ((3, 2), (2, 1), (3, 1))          # nw, ws, ns
 _PAIR_NAMES = ("nw", "ws", "ns")
@@ -83,12 +85,12 @@ def euler_lut(connectivity: int = 26) -> np.ndarray:
     """8·χ contribution of a binary 2×2×2 configuration (256 entries, int64).
 
     For ``connectivity=26`` the foreground is the union of closed voxel cubes (26-adjacency, its
-    complement 6-adjacent): around the lattice point shared by the eight voxels, count the incident
-    cells of that complex — the point, 6 half-edges (each shared by 4 voxels), 12 quarter faces
-    (shared by 2 voxels) and 8 voxels — with weights 1, −1/2, 1/4, −1/8 for the cells that lie in the
-    set. For ``connectivity=6`` the voxels are vertices of the dual cubical complex (6-adjacency,
-    complement 26-adjacent): 8 vertices (weight 1/8), 12 edges (−1/4), 6 squares (1/2), 1 cube (−1).
-    Both give integers ×8 (Ohser, Nagel & Schladitz 2003).
+    complement 6-adjacent): around the lattice point shared by the eight voxels, count the
+    incident cells of that complex — the point, 6 half-edges (each shared by 4 voxels), 12 quarter
+    faces (shared by 2 voxels) and 8 voxels — with weights 1, −1/2, 1/4, −1/8 for the cells that
+    lie in the set. For ``connectivity=6`` the voxels are vertices of the dual cubical complex
+    (6-adjacency, complement 26-adjacent): 8 vertices (weight 1/8), 12 edges (−1/4), 6 squares
+    (1/2), 1 cube (−1). Both give integers ×8 (Ohser, Nagel & Schladitz 2003).
     """
     if connectivity not in (6, 26):
         raise WetpathError(f"connectivity must be 6 or 26, got {connectivity}", step="lattice")
@@ -133,7 +135,8 @@ def _pair_counts_lut() -> np.ndarray:
         cls = steps - 1
         weight = 4 // _CLASSES[cls][2]
         for p, (a, b) in enumerate(_PAIR_TYPES):
-            hit = ((codes[:, s] == a) & (codes[:, t] == b)) | ((codes[:, s] == b) & (codes[:, t] == a))
+            cs, ct = codes[:, s], codes[:, t]
+            hit = ((cs == a) & (ct == b)) | ((cs == b) & (ct == a))
             out[:, 3 * p + cls] += weight * hit
     return out
 
@@ -173,7 +176,8 @@ def _count_row(r0, r1, r2, r3, x0, x1, nx, hist):
     else:
         prev = np.int64(0)
     for x in range(x0 + 1, min(x1, nx - 1) + 1):
-        c = np.int64(r0[x]) | (np.int64(r1[x]) << 2) | (np.int64(r2[x]) << 4) | (np.int64(r3[x]) << 6)
+        c = (np.int64(r0[x]) | (np.int64(r1[x]) << 2) | (np.int64(r2[x]) << 4)
+             | (np.int64(r3[x]) << 6))
         hist[prev | (c << 8)] += 1
         prev = c
     if x1 == nx:
@@ -237,7 +241,8 @@ class _Source:
         dtype = np.dtype(arr.dtype)
         if dtype.kind not in "iub":
             raise WetpathError(f"{name} must hold integers, got dtype {dtype}", step=step)
-        self.arr, self.shape, self.dtype, self.name, self.step = arr, tuple(map(int, shape)), dtype, name, step
+        self.arr, self.shape, self.dtype = arr, tuple(map(int, shape)), dtype
+        self.name, self.step = name, step
         self.is_numpy = isinstance(arr, np.ndarray)
         self.is_dask = hasattr(arr, "dask") and hasattr(arr, "compute")
 
@@ -250,7 +255,7 @@ class _Source:
         return fallback
 
     def read(self, z0: int, z1: int) -> np.ndarray:
-        """Planes [z0, z1) (clipped to the array), whole (y, x) extent, as a C-contiguous ndarray."""
+        """Planes [z0, z1) (clipped to the array), whole (y, x) extent, C-contiguous."""
         z0, z1 = max(z0, 0), min(z1, self.shape[0])
         if self.is_dask:
             out = self.arr[z0:z1].compute(scheduler="synchronous")
@@ -314,8 +319,9 @@ def iter_slabs(src: _Source, depth: int,
         yield a, b, planes
 
 
-def run_parallel(items: Iterator, work: Callable, threads: int | None, max_pending: int | None = None):
-    """Apply ``work(worker_index, item)`` to items from a sequential iterator on ``threads`` threads,
+def run_parallel(items: Iterator, work: Callable, threads: int | None,
+                 max_pending: int | None = None):
+    """Apply ``work(worker_index, item)`` to items of a sequential iterator on ``threads`` threads,
     at most ``max_pending`` items in flight (bounds memory). Each worker index is used by one thread
     at a time, so per-worker buffers need no lock. Results are returned in item order."""
     n = resolve_threads(threads)

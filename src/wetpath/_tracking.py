@@ -72,7 +72,7 @@ def _grow(keys, vals):
 @njit(cache=True, nogil=True)
 def _overlap_pass(a, b, keys, vals, used):
     """Count (a, b) label pairs over two equally shaped contiguous arrays (pairs (0, 0) skipped).
-    Runs of equal pairs are counted before touching the table. Returns the (possibly grown) table."""
+    Runs of equal pairs are counted before touching the table; returns the (grown) table."""
     fa = a.ravel()
     fb = b.ravel()
     last = np.int64(-1)
@@ -116,7 +116,8 @@ def _window(src: _Source, lo: tuple[int, ...], hi: tuple[int, ...]) -> np.ndarra
     clip_hi = [min(h, n) for h, n in zip(hi, src.shape, strict=True)]
     if all(c0 < c1 for c0, c1 in zip(clip_lo, clip_hi, strict=True)):
         data = src.read(clip_lo[0], clip_hi[0])[:, clip_lo[1]:clip_hi[1], clip_lo[2]:clip_hi[2]]
-        out[tuple(slice(c0 - l, c1 - l) for c0, c1, l in zip(clip_lo, clip_hi, lo, strict=True))] = data
+        dst = tuple(slice(c0 - l, c1 - l) for c0, c1, l in zip(clip_lo, clip_hi, lo, strict=True))
+        out[dst] = data
     return out
 
 
@@ -232,11 +233,11 @@ def increment_summary(overlaps: pd.DataFrame, events: pd.DataFrame | None = None
     Returns
     -------
     dict
-        Counts ``n_continue … n_vanish``; ``n_clusters_a/b``; ``volume_n_a/b`` (total n volume,
-        h³); ``volume_invaded`` (n in b where a had none), ``volume_withdrawn`` (n in a where b has
-        none) and ``volume_moved`` (their sum); ``largest_share_a/b`` (largest cluster's share of the
-        n volume, NaN without n); ``volume_balance`` (Σ children − parents over the events, equal to
-        volume_n_b − volume_n_a).
+        Counts ``n_continue … n_vanish``; ``n_clusters_a/b``; ``volume_n_a/b`` (total n
+        volume, h³); ``volume_invaded`` (n in b where a had none), ``volume_withdrawn`` (n in a
+        where b has none) and ``volume_moved`` (their sum); ``largest_share_a/b`` (largest
+        cluster's share of the n volume, NaN without n); ``volume_balance`` (Σ children − parents
+        over the events, equal to volume_n_b − volume_n_a).
     """
     h3 = _check_voxel_size(voxel_size) ** 3
     if events is None:
