@@ -81,8 +81,14 @@ def _remap(local, lut, offset):
             flat[i] = lut[offset + lab]
 
 
+def _check_codes(planes: np.ndarray) -> None:
+    if planes.size and ((planes.dtype.kind == "i" and planes.min() < 0) or planes.max() > 3):
+        raise WetpathError("labels must hold canonical phase codes 0..3", step="clusters")
+
+
 def _face_pairs(lower: np.ndarray, upper: np.ndarray, connectivity: int) -> np.ndarray:
-    """(k, 2) provisional id pairs adjacent across a z face (lower plane z−1, upper plane z)."""
+    """(k, 2) provisional id pairs adjacent across a z face (lower plane z−1, upper plane z);
+    duplicates are left in (the sparse graph sums them)."""
     ny, nx = lower.shape
     steps = (0,) if connectivity == 6 else (-1, 0, 1)
     offsets = [(dy, dx) for dy in steps for dx in steps]
@@ -95,7 +101,7 @@ def _face_pairs(lower: np.ndarray, upper: np.ndarray, connectivity: int) -> np.n
             pairs.append(np.stack([lo[both], up[both]], axis=1))
     if not pairs:
         return np.zeros((0, 2), np.int64)
-    return np.unique(np.concatenate(pairs).astype(np.int64), axis=0)
+    return np.concatenate(pairs).astype(np.int64)
 
 
 def label_clusters(labels, *, connectivity: int = 26, chunks=None, threads: int | None = None,
@@ -147,21 +153,31 @@ def label_clusters(labels, *, connectivity: int = 26, chunks=None, threads: int 
     depth = _depth(chunks, src)
     starts = list(range(0, nz, depth))
 
-    def label_slab(a: int) -> tuple[np.ndarray, int]:
-        planes = src.read(a, min(a + depth, nz))
-        if planes.size and (planes.min() < 0 or planes.max() > 3):
-            raise WetpathError("labels must hold canonical phase codes 0..3", step="clusters")
-        target = out[a:a + planes.shape[0]] if in_memory and out.dtype == dtype else None
-        if target is not None and target.flags.c_contiguous:
-            n = ndimage.label(planes == NONWETTING, structure, output=target)
-            return target, int(n)
-        local, n = ndimage.label(planes == NONWETTING, structure, output=dtype)
-        if in_memory:
-            out[a:a + planes.shape[0]] = local
-        return local, int(n)
+    # per-worker buffers, reused across slabs (first touch of fresh memory is slow)
+    nw = resolve_threads(threads)
+    masks: list[np.ndarray | None] = [None] * nw
+    locals_: list[np.ndarray | None] = [None] * nw
 
-    def first_pass(_w, a):
-        local, n = label_slab(a)
+    def label_slab(w: int, a: int) -> tuple[np.ndarray, int]:
+        planes = src.read(a, min(a + depth, nz))
+        t = planes.shape[0]
+        _check_codes(planes)
+        if masks[w] is None:
+            masks[w] = np.empty((depth, ny, nx), bool)
+        mask = np.equal(planes, NONWETTING, out=masks[w][:t])
+        target = out[a:a + t] if in_memory and out.dtype == dtype else None
+        direct = target is not None and target.flags.c_contiguous
+        if not direct:
+            if locals_[w] is None:
+                locals_[w] = np.empty((depth, ny, nx), dtype)
+            target = locals_[w][:t]
+        n = ndimage.label(mask, structure, output=target)
+        if in_memory and not direct:
+            out[a:a + t] = target
+        return target, int(n)
+
+    def first_pass(w, a):
+        local, n = label_slab(w, a)
         first = _first_voxels(local, n, a * ny * nx)
         return n, first[1:], local[0].copy(), local[-1].copy()
 
@@ -186,7 +202,7 @@ def label_clusters(labels, *, connectivity: int = 26, chunks=None, threads: int 
     lut = np.zeros(total + 1, dtype)
     lut[1:] = rank[comp]
 
-    def second_pass(_w, s):
+    def second_pass(w, s):
         a = starts[s]
         if in_memory:
             view = out[a:a + depth]
@@ -197,7 +213,7 @@ def label_clusters(labels, *, connectivity: int = 26, chunks=None, threads: int 
                 _remap(local, lut, offsets[s])
                 out[a:a + depth] = local
         else:
-            local, _ = label_slab(a)
+            local, _ = label_slab(w, a)
             _remap(local, lut, offsets[s])
             out[a:a + local.shape[0]] = local
 
@@ -391,16 +407,22 @@ def cluster_lattice_measures(labels, cluster_labels, voxel_size: float = 1.0, *,
     ps, pt, pc, pw = _pair_table()
 
     def check(p):
-        if p.size and (p.min() < 0 or p.max() > 3):
-            raise WetpathError("labels must hold canonical phase codes 0..3", step="clusters")
+        _check_codes(p)
         return p.astype(np.uint8, copy=False)
 
     slabs = zip(iter_slabs(src, depth, convert=check), iter_slabs(csrc, depth), strict=True)
+    nz, ny, nx = src.shape
+    padded: list[tuple[np.ndarray, np.ndarray] | None] = [None] * nw
 
     def work(w, item):
-        (a, _b, codes), (_, _, clus) = item
-        codes = np.pad(codes, ((0, 0), (1, 1), (1, 1)))
-        clus = np.pad(clus, ((0, 0), (1, 1), (1, 1)))
+        (a, _b, codes_), (_, _, clus_) = item
+        if padded[w] is None:      # zero borders in y and x stay zero: only interiors are written
+            padded[w] = (np.zeros((depth + 1, ny + 2, nx + 2), np.uint8),
+                         np.zeros((depth + 1, ny + 2, nx + 2), csrc.dtype))
+        t = codes_.shape[0]
+        codes, clus = padded[w][0][:t], padded[w][1][:t]
+        codes[:, 1:-1, 1:-1] = codes_
+        clus[:, 1:-1, 1:-1] = clus_
         bad = _cluster_cubes(codes, clus, a, pairs, e8, nmask, exmask, ps, pt, pc, pw,
                              CUBE_CORNERS, accs[w], bbmins[w], bbmaxs[w])
         if bad:

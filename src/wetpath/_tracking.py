@@ -74,7 +74,7 @@ def _overlap_pass(a, b, keys, vals, used):
     """Count (a, b) label pairs over two equally shaped contiguous arrays (pairs (0, 0) skipped).
     Runs of equal pairs are counted before touching the table; returns the (grown) table."""
     fa = a.ravel()
-    fb = b.ravel()
+    fb = b.ravel()      # views when contiguous (whole y, x extent), else copies
     last = np.int64(-1)
     run = 0
     for i in range(fa.size):
@@ -111,6 +111,8 @@ def _shift3(shift) -> tuple[int, int, int]:
 
 def _window(src: _Source, lo: tuple[int, ...], hi: tuple[int, ...]) -> np.ndarray:
     """Region [lo, hi) of a source in its own coordinates, zeros outside the array."""
+    if all(l >= 0 for l in lo) and all(h <= n for h, n in zip(hi, src.shape, strict=True)):
+        return src.read(lo[0], hi[0])[:, lo[1]:hi[1], lo[2]:hi[2]]
     out = np.zeros(tuple(h - l for l, h in zip(lo, hi, strict=True)), src.dtype)
     clip_lo = [max(l, 0) for l in lo]
     clip_hi = [min(h, n) for h, n in zip(hi, src.shape, strict=True)]
