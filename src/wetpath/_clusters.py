@@ -69,20 +69,21 @@ def _find(parent, i):
 
 
 @njit(cache=True, nogil=True)
-def _scan_labels(codes, out, parent, first, offs):
+def _scan_labels(codes, out, parent, first, offs, right):
     """Raster-scan union–find labelling of code 3 in a contiguous slab.
 
     ``out`` receives provisional labels; ``parent`` the union–find forest in which every root is
     the smallest provisional label of its component (created first, so at the component's first
     voxel in C order); ``first[l]`` the C-order index in the slab where label l was created.
-    ``offs`` lists the (dz, dy, dx) neighbours that precede a voxel in raster order. ``parent`` and
+    ``offs`` lists the (dz, dy, dx) neighbours that precede a voxel in raster order, except the
+    left one (0, 0, −1); ``right`` those of them that are not also neighbours of the left voxel:
+    when the left voxel is labelled, the others were already united with it. ``parent`` and
     ``first`` grow when full; returns (n, parent, first).
     """
     nz, ny, nx = codes.shape
     c = codes.ravel()
     o = out.ravel()
     n = 0
-    nof = offs.shape[0]
     for z in range(nz):
         for y in range(ny):
             row = (z * ny + y) * nx
@@ -94,9 +95,14 @@ def _scan_labels(codes, out, parent, first, offs):
                     continue
                 lab = 0
                 last = 0
+                nb = offs
+                if x > 0 and o[i - 1] != 0:
+                    last = o[i - 1]
+                    lab = _find(parent, last)
+                    nb = right
                 interior = inner and 0 < x < nx - 1
-                for k in range(nof):
-                    dz, dy, dx = offs[k, 0], offs[k, 1], offs[k, 2]
+                for k in range(nb.shape[0]):
+                    dz, dy, dx = nb[k, 0], nb[k, 1], nb[k, 2]
                     if not interior:
                         zz, yy, xx = z + dz, y + dy, x + dx
                         if zz < 0 or yy < 0 or yy >= ny or xx < 0 or xx >= nx:
@@ -157,12 +163,18 @@ def _remap(labels, table):
             flat[i] = table[lab]
 
 
-def _neighbour_offsets(connectivity: int) -> np.ndarray:
-    """Neighbours preceding a voxel in raster order, the nearest (0, 0, −1) first."""
+def _neighbour_offsets(connectivity: int) -> tuple[np.ndarray, np.ndarray]:
+    """Neighbours preceding a voxel in raster order without the left one, nearest first; and the
+    subset that is not a neighbour of the left voxel (see :func:`_scan_labels`)."""
     structure = _structure(connectivity)
+
+    def adjacent(d):
+        return max(map(abs, d)) <= 1 and structure[d[0] + 1, d[1] + 1, d[2] + 1]
+
     offs = [(dz, dy, dx) for dz in (-1, 0) for dy in (-1, 0, 1) for dx in (-1, 0, 1)
-            if (dz, dy, dx) < (0, 0, 0) and structure[dz + 1, dy + 1, dx + 1]]
-    return np.array(offs[::-1], np.int64)
+            if (dz, dy, dx) < (0, 0, -1) and adjacent((dz, dy, dx))][::-1]
+    right = [d for d in offs if not adjacent((d[0], d[1], d[2] + 1))]
+    return np.array(offs, np.int64), np.array(right, np.int64).reshape(-1, 3)
 
 
 def _check_codes(planes: np.ndarray) -> None:
@@ -236,7 +248,7 @@ def label_clusters(labels, *, connectivity: int = 26, chunks=None, threads: int 
     depth = _depth(chunks, src)
     starts = list(range(0, nz, depth))
 
-    offs = _neighbour_offsets(connectivity)
+    offs, right = _neighbour_offsets(connectivity)
     # per-worker buffers, reused across slabs (first touch of fresh memory is slow)
     nw = resolve_threads(threads)
     locals_: list[np.ndarray | None] = [None] * nw
@@ -255,7 +267,7 @@ def label_clusters(labels, *, connectivity: int = 26, chunks=None, threads: int 
                 locals_[w] = np.empty((depth, ny, nx), dtype)
             target = locals_[w][:t]
         n, forests[w][0], forests[w][1] = _scan_labels(planes, target, forests[w][0],
-                                                       forests[w][1], offs)
+                                                       forests[w][1], offs, right)
         if in_memory and not np.may_share_memory(target, out):
             out[a:a + t] = target
         local, first = _compact(forests[w][0], forests[w][1], n, a * ny * nx)
