@@ -337,12 +337,15 @@ def _pair_table() -> tuple[np.ndarray, ...]:
 
 
 @njit(cache=True, nogil=True)
-def _cluster_cubes(codes, clus, zbase, pairs, e8, nmask, exmask, ps, pt, pc, pw, corners,
+def _cluster_cubes(codes, clus, zbase, cube, single, e8, nmask, ps, pt, pc, pw, corners,
                    acc, bbmin, bbmax):
     """Accumulate per-cluster sums over the cubes of one padded slab.
 
     ``codes``/``clus`` have shape (T + 1, ny + 2, nx + 2): padded index (k, j, i) is voxel
-    (zbase − 1 + k, j − 1, i − 1). Returns the number of n voxels without a cluster id.
+    (zbase − 1 + k, j − 1, i − 1). ``cube[idx]`` holds the ×4 n–w and n–s pair counts per
+    direction class, 8·χ of the n corners and "holds an excluded voxel" of configuration idx.
+    ``single``: a cube holds at most one cluster (26-connectivity), so the label of its first n
+    corner stands for all. Returns the number of n voxels without a cluster id.
     """
     nk = codes.shape[0] - 1
     nj = codes.shape[1] - 1
@@ -383,6 +386,17 @@ def _cluster_cubes(codes, clus, zbase, pairs, e8, nmask, exmask, ps, pt, pc, pw,
                         bbmax[lab, 0] = max(bbmax[lab, 0], z)
                         bbmax[lab, 1] = max(bbmax[lab, 1], j)
                         bbmax[lab, 2] = max(bbmax[lab, 2], i)
+                if single:
+                    s = 0
+                    while not (m >> s) & 1:
+                        s += 1
+                    lab = clus[k + corners[s, 0], j + corners[s, 1], i + corners[s, 2]]
+                    if lab > 0:
+                        for q in range(7):
+                            acc[lab, 4 + q] += cube[idx, q]
+                        if cube[idx, 7]:
+                            acc[lab, 11] = 1
+                    continue
                 first = -1
                 mixed = False
                 for s in range(8):
@@ -398,11 +412,9 @@ def _cluster_cubes(codes, clus, zbase, pairs, e8, nmask, exmask, ps, pt, pc, pw,
                 if not mixed:
                     if first <= 0:
                         continue
-                    for q in range(3):
-                        acc[first, 4 + q] += pairs[idx, q]
-                        acc[first, 7 + q] += pairs[idx, 6 + q]
-                    acc[first, 10] += e8[m]
-                    if exmask[idx]:
+                    for q in range(7):
+                        acc[first, 4 + q] += cube[idx, q]
+                    if cube[idx, 7]:
                         acc[first, 11] = 1
                     continue
                 # several clusters in one cube (possible with 6-connectivity only)
@@ -423,7 +435,7 @@ def _cluster_cubes(codes, clus, zbase, pairs, e8, nmask, exmask, ps, pt, pc, pw,
                         if labs[u] == lab:
                             mask |= 1 << u
                     acc[lab, 10] += e8[mask]
-                    if exmask[idx]:
+                    if cube[idx, 7]:
                         acc[lab, 11] = 1
                     for p in range(ps.size):
                         a, b = ps[p], pt[p]
@@ -457,8 +469,8 @@ def cluster_lattice_measures(labels, cluster_labels, voxel_size: float = 1.0, *,
     labels : ndarray, zarr array or dask array, shape (z, y, x)
         Canonical phase codes.
     cluster_labels : array of int, same shape
-        Cluster ids (0 where not n), e.g. from :func:`label_clusters` with the same
-        ``connectivity``.
+        Cluster ids (0 where not n) from :func:`label_clusters` with the same ``connectivity``
+        (with 26, all n voxels of a 2×2×2 cube are taken to be one cluster).
     voxel_size : float
         Voxel edge length h; volumes in h³, areas in h².
     connectivity : {26, 6}
@@ -501,7 +513,10 @@ def cluster_lattice_measures(labels, cluster_labels, voxel_size: float = 1.0, *,
     bbmaxs = [np.full((n + 1, 3), -1, np.int64) for _ in range(nw)]
     pairs = _lut("pairs")
     nmask = _lut("masks")[:, 3].astype(np.int64)
-    exmask = _lut("masks")[:, 0] > 0
+    # compact per-configuration table (one cache line per row): nw ×3, ns ×3, 8·χ_n, excluded
+    cube = np.ascontiguousarray(np.concatenate(
+        [pairs[:, 0:3], pairs[:, 6:9], e8[nmask][:, None], (_lut("masks")[:, 0] > 0)[:, None]],
+        axis=1).astype(np.int16))
     ps, pt, pc, pw = _pair_table()
 
     def check(p):
@@ -521,7 +536,7 @@ def cluster_lattice_measures(labels, cluster_labels, voxel_size: float = 1.0, *,
         codes, clus = padded[w][0][:t], padded[w][1][:t]
         codes[:, 1:-1, 1:-1] = codes_
         clus[:, 1:-1, 1:-1] = clus_
-        bad = _cluster_cubes(codes, clus, a, pairs, e8, nmask, exmask, ps, pt, pc, pw,
+        bad = _cluster_cubes(codes, clus, a, cube, connectivity == 26, e8, nmask, ps, pt, pc, pw,
                              CUBE_CORNERS, accs[w], bbmins[w], bbmaxs[w])
         if bad:
             raise WetpathError(f"{bad} non-wetting voxels have no cluster id in cluster_labels",
