@@ -322,7 +322,8 @@ def iter_slabs(src: _Source, depth: int,
 def run_parallel(items: Iterator, work: Callable, threads: int | None,
                  max_pending: int | None = None):
     """Apply ``work(worker_index, item)`` to items of a sequential iterator on ``threads`` threads,
-    at most ``max_pending`` items in flight (bounds memory). Each worker index is used by one thread
+    at most ``max_pending`` (default ``threads``) items in flight besides the one being produced
+    (bounds memory). Each worker index is used by one thread
     at a time, so per-worker buffers need no lock. Results are returned in item order."""
     n = resolve_threads(threads)
     free: queue.Queue[int] = queue.Queue()
@@ -338,7 +339,7 @@ def run_parallel(items: Iterator, work: Callable, threads: int | None,
 
     if n == 1:
         return [work(0, item) for item in items]
-    limit = threading.BoundedSemaphore(max_pending or n + 1)
+    limit = threading.BoundedSemaphore(max_pending or n)
     futures: list[Future] = []
     with ThreadPoolExecutor(n) as pool:
         for item in items:
