@@ -1,0 +1,127 @@
+"""Tests of slab-wise cluster labelling and per-cluster lattice measures."""
+
+import numpy as np
+import pytest
+from scipy import ndimage
+from skimage.measure import euler_number
+
+from wetpath import WetpathError, synthetic
+from wetpath._clusters import cluster_lattice_measures, label_clusters
+from wetpath._lattice import lattice_measures
+
+
+def _renumber_by_first_voxel(ref, n):
+    """scipy labels renumbered 1..n by the C-order index of each label's first voxel."""
+    u, first = np.unique(ref.ravel(), return_index=True)
+    keep = u > 0
+    order = u[keep][np.argsort(first[keep])]
+    lut = np.zeros(n + 1, np.int64)
+    lut[order] = np.arange(1, n + 1)
+    return lut[ref]
+
+
+@pytest.fixture(scope="module")
+def medium():
+    return synthetic.random_medium((96, 70, 80), seed=3, cylinder_fov=True)
+
+
+@pytest.mark.parametrize("connectivity", [6, 26])
+@pytest.mark.parametrize("chunks", [32, 64, None])
+def test_labels_equal_scipy(medium, connectivity, chunks):
+    # reference: scipy.ndimage.label on the whole array, up to renumbering
+    structure = ndimage.generate_binary_structure(3, 1 if connectivity == 6 else 3)
+    ref, n_ref = ndimage.label(medium == 3, structure)
+    lab, n = label_clusters(medium, connectivity=connectivity,
+                            chunks=chunks or medium.shape[0], threads=2)
+    assert n == n_ref
+    assert np.array_equal(lab, _renumber_by_first_voxel(ref, n_ref))
+
+
+def test_labels_into_zarr(tmp_path, medium):
+    zarr = pytest.importorskip("zarr")
+    out = zarr.create_array(tmp_path / "c.zarr", shape=medium.shape, chunks=(24, 35, 40),
+                            dtype="int32")
+    lab, n = label_clusters(medium, out=out, threads=2)
+    ref, n_ref = label_clusters(medium)
+    assert n == n_ref and np.array_equal(lab[:], ref)
+
+
+def test_labels_from_zarr_and_dask(tmp_path, medium):
+    zarr = pytest.importorskip("zarr")
+    da = pytest.importorskip("dask.array")
+    z = zarr.create_array(tmp_path / "m.zarr", shape=medium.shape, chunks=(20, 70, 80),
+                          dtype="uint8")
+    z[:] = medium
+    ref, n_ref = label_clusters(medium)
+    for arr in (z, da.from_array(medium, chunks=(30, 35, 40))):
+        lab, n = label_clusters(arr)
+        assert n == n_ref and np.array_equal(lab, ref)
+
+
+def test_no_nonwetting_phase():
+    lab, n = label_clusters(np.full((5, 6, 7), 2, np.uint8), chunks=2)
+    assert n == 0 and not lab.any()
+    assert len(cluster_lattice_measures(np.full((5, 6, 7), 2, np.uint8), lab)) == 0
+
+
+@pytest.mark.parametrize("connectivity", [6, 26])
+def test_cluster_measures_against_references(medium, connectivity):
+    lab, n = label_clusters(medium, connectivity=connectivity)
+    df = cluster_lattice_measures(medium, lab, voxel_size=2.0, connectivity=connectivity,
+                                  chunks=17)
+    state = lattice_measures(medium, voxel_size=2.0)
+    assert list(df.cluster) == list(range(1, n + 1))
+    # per-cluster areas partition the state's n–w and n–s pair areas
+    assert df.area_nw.sum() == pytest.approx(state["area_nw"], rel=1e-12)
+    assert df.area_ns.sum() == pytest.approx(state["area_ns"], rel=1e-12)
+    # voxel counts, centroids and boxes: scipy.ndimage reference
+    idx = np.arange(1, n + 1)
+    assert np.array_equal(df.voxels, ndimage.sum_labels(np.ones_like(lab), lab, idx))
+    assert df.volume.sum() == state["volume_n"]
+    com = np.array(ndimage.center_of_mass(np.ones_like(lab), lab, idx))
+    assert np.allclose(df[["centroid_z", "centroid_y", "centroid_x"]], com)
+    for row, sl in zip(df.itertuples(), ndimage.find_objects(lab), strict=True):
+        assert (row.bbox_z0, row.bbox_z1, row.bbox_y0, row.bbox_y1, row.bbox_x0, row.bbox_x1) == (
+            sl[0].start, sl[0].stop, sl[1].start, sl[1].stop, sl[2].start, sl[2].stop)
+    # per-cluster χ: skimage.measure.euler_number of each cluster (every 4th, to stay fast)
+    conn = 3 if connectivity == 26 else 1
+    for row in df.iloc[::4].itertuples():
+        sl = tuple(slice(max(a - 1, 0), b + 1) for a, b in (
+            (row.bbox_z0, row.bbox_z1), (row.bbox_y0, row.bbox_y1), (row.bbox_x0, row.bbox_x1)))
+        assert row.euler_n == euler_number(lab[sl] == row.cluster, connectivity=conn)
+    # touches_border: 26-adjacent to the array border or an excluded voxel (binary dilation ref)
+    excluded = np.pad(medium == 0, 1, constant_values=True)
+    near = ndimage.binary_dilation(excluded, np.ones((3, 3, 3), bool))[1:-1, 1:-1, 1:-1]
+    expected = np.zeros(n + 1, bool)
+    expected[np.unique(lab[near & (lab > 0)])] = True
+    assert np.array_equal(df.touches_border.to_numpy(), expected[1:])
+
+
+def test_cluster_measures_chunk_invariant(medium):
+    lab, _ = label_clusters(medium)
+    whole = cluster_lattice_measures(medium, lab, chunks=1000, threads=1)
+    for chunks in (13, 48, 64):
+        assert cluster_lattice_measures(medium, lab, chunks=chunks, threads=2).equals(whole)
+
+
+def test_ball_cluster_closed_form():
+    # closed form: ball of radius 15: V = 4πR³/3, A = 4πR² within 2 % (METHODS.md §1, §5), χ = 1
+    b = synthetic.ball(15, seed=2)
+    lab, n = label_clusters(b)
+    df = cluster_lattice_measures(b, lab)
+    ex = synthetic.ball_exact(15)
+    assert n == 1 and df.euler_n[0] == 1 and not df.touches_border[0]
+    assert df.area_nw[0] == pytest.approx(ex["area"], rel=0.02)
+    assert df.volume[0] == pytest.approx(ex["volume"], rel=0.01)
+
+
+def test_errors():
+    m = np.full((4, 4, 4), 3, np.uint8)
+    with pytest.raises(WetpathError, match="connectivity"):
+        label_clusters(m, connectivity=18)
+    with pytest.raises(WetpathError, match="no cluster id"):
+        cluster_lattice_measures(m, np.zeros((4, 4, 4), np.int32))
+    with pytest.raises(WetpathError, match="differs"):
+        cluster_lattice_measures(m, np.zeros((4, 4, 5), np.int32))
+    with pytest.raises(WetpathError, match="canonical"):
+        label_clusters(np.full((4, 4, 4), 9, np.uint8))
