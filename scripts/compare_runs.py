@@ -93,7 +93,8 @@ def compare_frames(a: pd.DataFrame, b: pd.DataFrame, *, rtol: float, atol: float
             with np.errstate(invalid="ignore"):
                 diff = np.abs(xv - yv)
                 tol = atol + rtol * np.maximum(np.abs(xv), np.abs(yv))
-                ok = both_nan | (xv == yv) | (diff <= tol)
+                finite = np.isfinite(xv) & np.isfinite(yv)
+                ok = both_nan | (xv == yv) | (finite & (diff <= tol))
             for i in np.flatnonzero(~ok)[:MAX_REPORTED]:
                 scale = max(abs(xv[i]), abs(yv[i]))
                 rel = diff[i] / scale if scale and math.isfinite(scale) else float("nan")
@@ -154,20 +155,22 @@ def run_logged(cmd: list[str], log_path: Path, label: str) -> list[str]:
     with open(log_path, "w") as log, subprocess.Popen(
         cmd, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True, bufsize=1
     ) as proc:
-        try:
-            assert proc.stdout is not None
+        assert proc.stdout is not None
+
+        def echo() -> None:
             for line in proc.stdout:
                 lines.append(line.rstrip("\n"))
                 log.write(line)
                 print(f"[{label}] {line}", end="", flush=True)
-            rc = proc.wait()
+
+        try:
+            echo()
         except KeyboardInterrupt:
             print(f"[{label}] interrupted: waiting for snakemake to cancel its jobs", flush=True)
-            try:
-                proc.wait(timeout=55)
-            except subprocess.TimeoutExpired:
-                proc.kill()
+            echo()  # keep reading, or snakemake blocks on a full pipe while it shuts down
+            proc.wait()
             raise
+        rc = proc.wait()
     if rc != 0:
         raise RunFailed(f"{label}: snakemake exited with {rc} (log: {log_path})")
     return lines
