@@ -10,6 +10,8 @@
 #   SLURM_STAGE_SNAKEFILE workflow to run         (default: <repo>/Snakefile)
 #   SLURM_STAGE_CONFIG    its config file         (default: <repo>/config/config.yaml)
 #   SLURM_STAGE_TIMEOUT   seconds for both runs   (default: 1200); then SIGINT, SIGKILL 60 s later
+#   SLURM_STAGE_COMPARE_ARGS  extra options of scripts/compare_runs.py, e.g.
+#                         "--ignore-column elapsed_s --exclude provenance/*.csv" (split at spaces, no quoting)
 #   SLURM_CI_*            see .ci/slurm-up.sh
 # Needs root and Debian 12 (installs slurm, munge and MariaDB packages). Every daemon it starts is
 # stopped on exit, also after a failure or the time limit (.ci/slurm-down.sh, by pid file).
@@ -20,6 +22,7 @@ VENV=${WETPATH_VENV:-$REPO/.venv}
 SNAKEFILE=${SLURM_STAGE_SNAKEFILE:-$REPO/Snakefile}
 CONFIG=${SLURM_STAGE_CONFIG:-$REPO/config/config.yaml}
 LIMIT=${SLURM_STAGE_TIMEOUT:-1200}
+read -r -a COMPARE_ARGS <<< "${SLURM_STAGE_COMPARE_ARGS:-}"
 PLUGIN='snakemake-executor-plugin-slurm>=2.8,<3'
 
 log() { echo "== slurm stage [$(date -u +%T), ${SECONDS}s] $*"; }
@@ -30,6 +33,7 @@ for f in "$SNAKEFILE" "$CONFIG"; do
 done
 
 WORK=$(mktemp -d "${TMPDIR:-/tmp}/wetpath-slurm.XXXXXX")
+# shellcheck disable=SC2317  # (called by the trap)
 finish() {
   local rc=$?
   if [ "$rc" != 0 ]; then
@@ -45,6 +49,7 @@ finish() {
   exit "$rc"
 }
 trap finish EXIT
+trap 'exit 130' INT TERM
 
 SECONDS=0
 log "bring-up"
@@ -60,12 +65,17 @@ fi
 # jobs inherit this environment (sbatch exports it): the venv's wetpath and python come first
 export PATH="$VENV/bin:$PATH"
 log "comparing a local run with a SLURM run (time limit ${LIMIT}s)"
-rc=0
 # SIGINT, not SIGTERM: on SIGINT snakemake cancels its SLURM jobs and exits; on SIGTERM it keeps
-# waiting for them. -k: SIGKILL if it has not exited 60 s later.
+# waiting for them. -k: SIGKILL if it has not exited 60 s later. timeout runs in its own process
+# group, out of reach of Ctrl-C: an interrupted stage passes SIGINT on to it and waits.
 timeout -s INT -k 60 "$LIMIT" "$VENV/bin/python" "$REPO/scripts/compare_runs.py" \
   --snakefile "$SNAKEFILE" --configfile "$CONFIG" \
-  --profile "$REPO/workflow/profiles/slurm-ci" --workdir "$WORK/runs" -- "$@" || rc=$?
+  --profile "$REPO/workflow/profiles/slurm-ci" --workdir "$WORK/runs" ${COMPARE_ARGS[@]+"${COMPARE_ARGS[@]}"} \
+  -- "$@" &
+RUN_PID=$!
+trap 'log "interrupted: stopping the runs"; kill -INT "$RUN_PID" 2>/dev/null; wait "$RUN_PID"; exit 130' INT TERM
+rc=0
+wait "$RUN_PID" || rc=$?
 case $rc in
   0)   log "SLURM results equal the local results" ;;
   124|137) log "time limit of ${LIMIT}s reached" ;;

@@ -122,18 +122,28 @@ def read_csv(path: Path) -> pd.DataFrame:
         raise RunFailed(f"compare: {path}: not a readable CSV ({exc})") from None
 
 
-def compare_trees(local: Path, slurm: Path, pattern: str, *, rtol: float,
-                  atol: float) -> Differences:
-    """Compare every CSV matching ``pattern`` under two working directories."""
+def compare_trees(local: Path, slurm: Path, pattern: str, *, rtol: float, atol: float,
+                  exclude: tuple[str, ...] = (), ignore_columns: tuple[str, ...] = ()
+                  ) -> Differences:
+    """Compare every CSV matching ``pattern`` under two working directories.
+
+    Files matching a glob in ``exclude`` and columns named in ``ignore_columns`` (run-specific
+    values such as timings or host names) are left out.
+    """
     result = Differences()
-    files_a = {p.relative_to(local) for p in local.glob(pattern) if p.is_file()}
-    files_b = {p.relative_to(slurm) for p in slurm.glob(pattern) if p.is_file()}
+
+    def tables(root: Path) -> set[Path]:
+        return {p.relative_to(root) for p in root.glob(pattern)
+                if p.is_file() and not any(p.relative_to(root).match(g) for g in exclude)}
+
+    files_a, files_b = tables(local), tables(slurm)
     for rel in sorted(files_a - files_b):
         result.add(f"{rel}: written by the local run only")
     for rel in sorted(files_b - files_a):
         result.add(f"{rel}: written by the SLURM run only")
     for rel in sorted(files_a & files_b):
-        a, b = read_csv(local / rel), read_csv(slurm / rel)
+        a, b = (read_csv(root / rel).drop(columns=list(ignore_columns), errors="ignore")
+                for root in (local, slurm))
         result.files_compared += 1
         result.values_compared += a.size
         for line in compare_frames(a, b, rtol=rtol, atol=atol):
@@ -231,6 +241,10 @@ def parse_args(argv: list[str] | None) -> argparse.Namespace:
     p.add_argument("--cores", type=int, default=2, help="cores of the local run (default 2)")
     p.add_argument("--results-glob", default="results/**/*.csv",
                    help="CSV files to compare, relative to each run's directory")
+    p.add_argument("--exclude", action="append", default=[], metavar="GLOB",
+                   help="leave out CSV files matching GLOB (repeatable)")
+    p.add_argument("--ignore-column", action="append", default=[], metavar="NAME",
+                   help="leave out columns named NAME, e.g. timings (repeatable)")
     p.add_argument("--rtol", type=float, default=1e-9,
                    help="relative tolerance for floating-point values (default 1e-9)")
     p.add_argument("--atol", type=float, default=0.0,
@@ -269,7 +283,9 @@ def main(argv: list[str] | None = None) -> int:
                             *args.snakemake_args], workdir / "slurm.log", "slurm")
         t2 = time.monotonic()
         check_accounting(lines, since)
-        diffs = compare_trees(local, slurm, args.results_glob, rtol=args.rtol, atol=args.atol)
+        diffs = compare_trees(local, slurm, args.results_glob, rtol=args.rtol, atol=args.atol,
+                              exclude=tuple(args.exclude),
+                              ignore_columns=tuple(args.ignore_column))
     except RunFailed as exc:
         print(exc, file=sys.stderr)
         return 2

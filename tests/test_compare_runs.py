@@ -112,6 +112,19 @@ def test_compare_trees_finds_missing_and_differing_files(tmp_path):
     assert len(diffs.lines) == 2
 
 
+def test_excluded_files_and_ignored_columns_are_left_out(tmp_path):
+    local, slurm = tmp_path / "local", tmp_path / "slurm"
+    write(local, "results/states.csv", "step,elapsed_s,volume_n\n1,3.2,10\n")
+    write(slurm, "results/states.csv", "step,elapsed_s,volume_n\n1,9.7,10\n")
+    write(local, "results/provenance/run.csv", "host\nlaptop\n")
+    write(slurm, "results/provenance/run.csv", "host\nnode1\n")
+    diffs = compare_runs.compare_trees(local, slurm, "results/**/*.csv", rtol=1e-9, atol=0.0,
+                                       exclude=("provenance/*.csv",),
+                                       ignore_columns=("elapsed_s",))
+    assert diffs.lines == []
+    assert (diffs.files_compared, diffs.values_compared) == (1, 2)
+
+
 def test_main_rejects_a_non_empty_workdir(tmp_path, capsys):
     (tmp_path / "Snakefile").write_text("")
     (tmp_path / "config.yaml").write_text("")
