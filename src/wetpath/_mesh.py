@@ -63,6 +63,7 @@ from ._codes import EXCLUDED, NONWETTING, SOLID
 from ._errors import WetpathError
 
 TAUBIN_LAMBDA, TAUBIN_MU, TAUBIN_ITERATIONS = 0.5, -0.53, 10
+BAND_START = 3.0          # in σ: the band starts this far from the solid
 BAND_WIDTH = 3.0          # voxels: band levels m = 3σ ... 3σ + BAND_WIDTH
 BAND_LEVELS = 7
 CURVATURE_DISTANCE = 4.0  # in σ: vertices used for κ are at least this far from the solid
@@ -79,7 +80,7 @@ COLUMNS = ["cluster", "area_nw_mesh", "area_ns_mesh", "curvature_nw", "curvature
 
 def band_levels(sigma: float) -> np.ndarray:
     """Wall distances m (voxels) at which band sums are evaluated: 3σ … 3σ + 3."""
-    return 3.0 * sigma + np.linspace(0.0, BAND_WIDTH, BAND_LEVELS)
+    return BAND_START * sigma + np.linspace(0.0, BAND_WIDTH, BAND_LEVELS)
 
 
 def _halo(sigma: float) -> int:
@@ -93,7 +94,7 @@ def _pad(sigma: float) -> int:
 
 
 def _distance_clip(sigma: float) -> float:
-    return 3 * sigma + BAND_WIDTH + 8.0
+    return BAND_START * sigma + BAND_WIDTH + 8.0
 
 
 # --------------------------------------------------------------------------------------------------
@@ -266,6 +267,168 @@ def vertex_measures(verts: np.ndarray, faces: np.ndarray):
     return a_mixed, kappa, deficit, vn, area, normal
 
 
+@njit(cache=True, nogil=True)
+def _taubin_kernel(x, edges, iterations, lam, mu):
+    """Compiled Taubin smoothing over unique edges, in place (oracle: ``taubin_smooth``)."""
+    nv = x.shape[0]
+    deg = np.zeros(nv)
+    for e in range(edges.shape[0]):
+        deg[edges[e, 0]] += 1.0
+        deg[edges[e, 1]] += 1.0
+    acc = np.empty((nv, 3))
+    for it in range(2 * iterations):
+        f = lam if it % 2 == 0 else mu
+        acc[:] = 0.0
+        for e in range(edges.shape[0]):
+            a, b = edges[e, 0], edges[e, 1]
+            for c in range(3):
+                acc[a, c] += x[b, c]
+                acc[b, c] += x[a, c]
+        for i in range(nv):
+            if deg[i] > 0:
+                for c in range(3):
+                    x[i, c] += f * (acc[i, c] / deg[i] - x[i, c])
+    return x
+
+
+@njit(cache=True, nogil=True)
+def _vertex_kernel(verts, faces):
+    """Compiled ``vertex_measures`` (same outputs, same formulas)."""
+    nv, nf = verts.shape[0], faces.shape[0]
+    a_mixed = np.zeros(nv)
+    hvec = np.zeros((nv, 3))
+    vn = np.zeros((nv, 3))
+    angsum = np.zeros(nv)
+    farea = np.empty(nf)
+    fnorm = np.empty((nf, 3))
+    p = np.empty((3, 3))
+    cots = np.empty(3)
+    opp2 = np.empty(3)
+    for f in range(nf):
+        for k in range(3):
+            for c in range(3):
+                p[k, c] = verts[faces[f, k], c]
+        u0, u1, u2 = p[1, 0] - p[0, 0], p[1, 1] - p[0, 1], p[1, 2] - p[0, 2]
+        v0, v1, v2 = p[2, 0] - p[0, 0], p[2, 1] - p[0, 1], p[2, 2] - p[0, 2]
+        w0, w1, w2 = p[2, 0] - p[1, 0], p[2, 1] - p[1, 1], p[2, 2] - p[1, 2]
+        c0, c1, c2 = u1 * v2 - u2 * v1, u2 * v0 - u0 * v2, u0 * v1 - u1 * v0
+        dbl = math.sqrt(c0 * c0 + c1 * c1 + c2 * c2)
+        safe = dbl if dbl > 0 else 1.0
+        area = 0.5 * dbl
+        farea[f] = area
+        fnorm[f, 0], fnorm[f, 1], fnorm[f, 2] = c0 / safe, c1 / safe, c2 / safe
+        dots0 = u0 * v0 + u1 * v1 + u2 * v2
+        dots1 = -(u0 * w0 + u1 * w1 + u2 * w2)
+        dots2 = v0 * w0 + v1 * w1 + v2 * w2
+        opp2[0] = w0 * w0 + w1 * w1 + w2 * w2
+        opp2[1] = v0 * v0 + v1 * v1 + v2 * v2
+        opp2[2] = u0 * u0 + u1 * u1 + u2 * u2
+        cots[0], cots[1], cots[2] = dots0 / safe, dots1 / safe, dots2 / safe
+        angsum[faces[f, 0]] += math.atan2(dbl, dots0)
+        angsum[faces[f, 1]] += math.atan2(dbl, dots1)
+        angsum[faces[f, 2]] += math.atan2(dbl, dots2)
+        obtuse = cots[0] < 0 or cots[1] < 0 or cots[2] < 0
+        for k in range(3):
+            k1, k2 = (k + 1) % 3, (k + 2) % 3
+            if obtuse:
+                a_mixed[faces[f, k]] += area / 2 if cots[k] < 0 else area / 4
+            else:
+                a_mixed[faces[f, k]] += (opp2[k1] * cots[k1] + opp2[k2] * cots[k2]) / 8.0
+            for c in range(3):
+                hvec[faces[f, k], c] += (cots[k2] * (p[k, c] - p[k1, c])
+                                         + cots[k1] * (p[k, c] - p[k2, c]))
+                vn[faces[f, k], c] += fnorm[f, c] * area
+    kappa = np.empty(nv)
+    deficit = np.empty(nv)
+    for i in range(nv):
+        n = math.sqrt(vn[i, 0] ** 2 + vn[i, 1] ** 2 + vn[i, 2] ** 2)
+        n = max(n, 1e-30)
+        for c in range(3):
+            vn[i, c] /= n
+        safe = a_mixed[i] if a_mixed[i] > 0 else 1.0
+        kappa[i] = 0.5 * (hvec[i, 0] * vn[i, 0] + hvec[i, 1] * vn[i, 1]
+                          + hvec[i, 2] * vn[i, 2]) / safe
+        deficit[i] = 2 * np.pi - angsum[i]
+    return a_mixed, kappa, deficit, vn, farea, fnorm
+
+
+@njit(cache=True, nogil=True)
+def _band_kernel(d3, farea, flux, good_f, deficit, d, good_v, levels):
+    """Per level m: Σ area above m, Σ flux below m (faces clipped by the linear interpolant of the
+    sorted corner distances ``d3``), Σ deficit · ramp(d − m) (oracle: ``_band_sums``)."""
+    nl = levels.shape[0]
+    a = np.zeros(nl)
+    lid = np.zeros(nl)
+    k = np.zeros(nl)
+    for f in range(d3.shape[0]):
+        if not good_f[f]:
+            continue
+        d0, d1, d2 = d3[f, 0], d3[f, 1], d3[f, 2]
+        for j in range(nl):
+            m = levels[j]
+            if m >= d2:
+                below = 1.0
+            elif m <= d0:
+                below = 0.0
+            elif m <= d1:
+                den = (d1 - d0) * (d2 - d0)
+                below = (m - d0) ** 2 / den if den > 0 else 0.5
+            else:
+                den = (d2 - d0) * (d2 - d1)
+                below = 1.0 - (d2 - m) ** 2 / den if den > 0 else 0.5
+            below = min(max(below, 0.0), 1.0)
+            a[j] += farea[f] * (1.0 - below)
+            lid[j] -= flux[f] * below
+    for i in range(d.shape[0]):
+        if not good_v[i]:
+            continue
+        for j in range(nl):
+            k[j] += deficit[i] * min(max(d[i] - levels[j] + 0.5, 0.0), 1.0)
+    return a, lid, k
+
+
+@njit(cache=True, nogil=True)
+def _patch_euler_kernel(dface, border, faces, face_edges, v_own, e_own, f_own, levels, n_edges):
+    """Per level m: owned V − E + F of the patch of non-border faces with mean distance > m."""
+    nl = levels.shape[0]
+    out = np.zeros(nl)
+    v_used = np.zeros(v_own.shape[0], np.bool_)
+    e_used = np.zeros(n_edges, np.bool_)
+    for j in range(nl):
+        v_used[:] = False
+        e_used[:] = False
+        chi = 0.0
+        for f in range(faces.shape[0]):
+            if border[f] or dface[f] <= levels[j]:
+                continue
+            if f_own[f]:
+                chi += 1.0
+            for k in range(3):
+                v = faces[f, k]
+                if not v_used[v]:
+                    v_used[v] = True
+                    if v_own[v]:
+                        chi += 1.0
+                e = face_edges[f, k]
+                if not e_used[e]:
+                    e_used[e] = True
+                    if e_own[e]:
+                        chi -= 1.0
+        out[j] = chi
+    return out
+
+
+def _band_sums(d3, farea, flux, good_f, deficit, d, good_v, levels):
+    """Reference (numpy) implementation of ``_band_kernel``."""
+    a, lid, k = (np.zeros(len(levels)) for _ in range(3))
+    for j, m in enumerate(levels):
+        below = _fraction_below(d3, m)
+        a[j] = np.sum((farea * (1 - below))[good_f])
+        lid[j] = -np.sum((flux * below)[good_f])
+        k[j] = np.sum((deficit * _ramp(d - m))[good_v])
+    return a, lid, k
+
+
 def _fraction_below(d3: np.ndarray, m: float) -> np.ndarray:
     """Area fraction of each triangle where the linear interpolant of the corner values ``d3``
     (F, 3, sorted along axis 1) is below ``m``."""
@@ -334,6 +497,31 @@ def level_curve(verts, faces, edges, face_edges, d, nu, normal, m, edge_own, fac
     return length[own], geo, nrm, pair[own]
 
 
+def _raw_mesh(indicator: np.ndarray, sigma: float):
+    """Blur, marching cubes at 0.5, faces wound outward; with the unique edges."""
+    blur = ndimage.gaussian_filter(indicator.astype(np.float32), sigma, mode="constant", cval=0.0)
+    if blur.max() <= 0.5 or blur.min() >= 0.5:
+        return np.zeros((0, 3)), np.zeros((0, 3), np.int64), np.zeros((0, 2), np.int64), None
+    verts0, faces, _, _ = marching_cubes(blur, 0.5, allow_degenerate=False)
+    faces = np.ascontiguousarray(faces[:, ::-1], dtype=np.int64)
+    edges, face_edges = _edges(faces, len(verts0))
+    return verts0.astype(np.float64), faces, edges, face_edges
+
+
+def smoothed_mesh(indicator: np.ndarray, sigma: float = 1.0):
+    """Mesh of a binary phase: Gaussian blur (σ voxels), marching cubes at 0.5, Taubin smoothing.
+
+    Returns the marching-cubes vertices (V, 3), the smoothed vertices (V, 3), both in voxel
+    coordinates (z, y, x), and the faces (F, 3), wound so that normals point out of the phase.
+    Outside the array the phase is taken as absent.
+    """
+    verts0, faces, edges, _ = _raw_mesh(indicator, sigma)
+    if len(faces) == 0:
+        return verts0, verts0.copy(), faces
+    verts = _taubin_kernel(verts0.copy(), edges, TAUBIN_ITERATIONS, TAUBIN_LAMBDA, TAUBIN_MU)
+    return verts0, verts, faces
+
+
 # --------------------------------------------------------------------------------------------------
 # one cluster in one box
 
@@ -351,20 +539,12 @@ def _cluster_box_sums(lab, clu, cid, sd, lo, own_lo, own_hi, sigma, levels, key_
            "G": np.zeros(nl), "N": np.zeros(nl), "chi": np.zeros(nl), "V": 0.0, "E": 0.0, "F": 0.0,
            "kA": 0.0, "k2A": 0.0, "Anw_raw": 0.0, "Ans_raw": 0.0, "wA": 0.0, "cosA": 0.0, "cosW": 0.0, "dmax": -np.inf,
            "segs": np.zeros((0, 4), np.int64)}
-    ind = (clu == cid).astype(np.float32)
-    if not ind.any():
-        return res
-    blur = ndimage.gaussian_filter(ind, sigma, mode="constant", cval=0.0)
-    if blur.max() <= 0.5:
-        return res
-    verts0, faces, _, _ = marching_cubes(blur, 0.5, allow_degenerate=False)
+    verts0, faces, edges, face_edges = _raw_mesh(clu == cid, sigma)
     if len(faces) == 0:
         return res
-    faces = faces[:, ::-1].astype(np.int64)  # wind so that normals point out of n (into w / s)
     nv = len(verts0)
-    verts = taubin_smooth(verts0, faces)
-    a_mix, kappa, deficit, vnorm, farea, fnorm = vertex_measures(verts, faces)
-    edges, face_edges = _edges(faces, nv)
+    verts = _taubin_kernel(verts0.copy(), edges, TAUBIN_ITERATIONS, TAUBIN_LAMBDA, TAUBIN_MU)
+    a_mix, kappa, deficit, vnorm, farea, fnorm = _vertex_kernel(verts, faces)
 
     # ownership by lattice cell of the unsmoothed mesh (global frame)
     g0 = verts0 + lo
@@ -374,11 +554,11 @@ def _cluster_box_sums(lab, clu, cid, sd, lo, own_lo, own_hi, sigma, levels, key_
         return np.all((c >= own_lo) & (c < own_hi), axis=1)
 
     v_own = owned(g0)
-    f_own = owned(g0[faces].mean(axis=1))
+    f_own = owned((g0[faces[:, 0]] + g0[faces[:, 1]] + g0[faces[:, 2]]) / 3.0)
     e_own = owned(0.5 * (g0[edges[:, 0]] + g0[edges[:, 1]]))
 
     # border faces: the phase across the face is outside the array or the field of view
-    cen = verts[faces].mean(axis=1)
+    cen = (verts[faces[:, 0]] + verts[faces[:, 1]] + verts[faces[:, 2]]) / 3.0
     probe = np.rint(cen + 0.8 * fnorm).astype(np.int64)
     probe = np.clip(probe, 0, np.array(lab.shape) - 1)
     across = lab[probe[:, 0], probe[:, 1], probe[:, 2]]
@@ -399,8 +579,8 @@ def _cluster_box_sums(lab, clu, cid, sd, lo, own_lo, own_hi, sigma, levels, key_
                        - ndimage.map_coordinates(sd, (verts - step).T, order=1, mode="nearest"))
     nu = _unit(grad)
     d3 = np.sort(d[faces], axis=1)
-    dface = d3.mean(axis=1)
-    gface = _unit(grad[faces].mean(axis=1))
+    dface = (d3[:, 0] + d3[:, 1] + d3[:, 2]) / 3.0
+    gface = _unit(grad[faces[:, 0]] + grad[faces[:, 1]] + grad[faces[:, 2]])
     flux = farea * np.einsum("ij,ij->i", gface, fnorm)
     # volume term of the footprint (lid) flux identity: Δd (7-point stencil) over the cluster's voxels
     vox = np.argwhere(clu == cid)
@@ -413,25 +593,22 @@ def _cluster_box_sums(lab, clu, cid, sd, lo, own_lo, own_hi, sigma, levels, key_
             nb[:, ax] = np.clip(nb[:, ax] + sgn, 0, sd.shape[ax] - 1)
             vlap += sd[nb[:, 0], nb[:, 1], nb[:, 2]]
 
-    fv_used = np.zeros(nv, bool)
+    res["A"], lid, res["K"] = _band_kernel(d3, farea, flux, good_f, deficit, d, good_v, levels)
+    res["chi"] = _patch_euler_kernel(dface, border, faces, face_edges, v_own, e_own, f_own,
+                                     levels, len(edges))
+    # the level curves only meet faces whose distance range overlaps the band
+    fsub = np.flatnonzero((d3[:, 2] > levels[0]) & (d3[:, 0] <= levels[-1]))
+    e_sub, fe_sub = np.unique(face_edges[fsub], return_inverse=True)
+    fe_sub = fe_sub.reshape(-1, 3)
     for k, m in enumerate(levels):
-        below = _fraction_below(d3, m)
-        res["A"][k] = float(np.sum((farea * (1 - below))[good_f]))
-        res["K"][k] = float(np.sum((deficit * _ramp(d - m))[good_v]))
-        res["Lid"][k] = float(-np.sum((flux * below)[good_f]) + np.sum(vlap * _ramp(m - vd)))
-        patch = (dface > m) & ~border
-        fv_used[:] = False
-        fv_used[faces[patch].ravel()] = True
-        e_used = np.zeros(len(edges), bool)
-        e_used[face_edges[patch].ravel()] = True
-        res["chi"][k] = float(np.sum(fv_used & v_own) - np.sum(e_used & e_own)
-                              + np.sum(patch & f_own))
-        seg_len, geo, nrm, pair = level_curve(verts, faces, edges, face_edges, d, nu, fnorm, m,
-                                              e_own, good_f)
+        res["Lid"][k] = float(lid[k] + np.sum(vlap * _ramp(m - vd)))
+        seg_len, geo, nrm, pair = level_curve(verts, faces[fsub], edges[e_sub], fe_sub, d, nu,
+                                              fnorm[fsub], m, e_own[e_sub], good_f[fsub])
         res["L"][k], res["G"][k], res["N"][k] = float(seg_len.sum()), geo, nrm
         if k == 0 and len(pair):
             vkey = _vertex_keys(g0, key_dims)
-            ek = np.sort(np.stack([vkey[edges[:, 0]], vkey[edges[:, 1]]], axis=1), axis=1)
+            es = edges[e_sub]
+            ek = np.sort(np.stack([vkey[es[:, 0]], vkey[es[:, 1]]], axis=1), axis=1)
             res["segs"] = np.concatenate([ek[pair[:, 0]], ek[pair[:, 1]]], axis=1)
     res["V"], res["E"], res["F"] = float(v_own.sum()), float(e_own.sum()), float(f_own.sum())
 
@@ -566,42 +743,50 @@ def mesh_measures(labels: np.ndarray, voxel_size: float = 1.0, *, clusters: np.n
     bb = np.array([[s.start for s in o] + [s.stop for s in o] if o is not None
                    else [0, 0, 0, -10**9, -10**9, -10**9] for o in objs], dtype=np.int64)
     key_dims = shape + 2 * pad + 2
+    boxes = [(np.array([rz[0], ry[0], rx[0]]), np.array([rz[1], ry[1], rx[1]]))
+             for rz in ranges[0] for ry in ranges[1] for rx in ranges[2]]
+
+    def chunk(own_lo, own_hi, pool=None):
+        # clusters whose mesh cells [bbox_lo − 1, bbox_hi) meet the owned range
+        hit = np.all((bb[:, :3] - 1 < own_hi) & (bb[:, 3:] > own_lo), axis=1)
+        ids = np.flatnonzero(hit) + 1
+        if ids.size == 0:
+            return []
+        blo = np.maximum(own_lo - halo, -pad)
+        bhi = np.minimum(own_hi + halo, shape + pad)
+        lab_c = _extract(labels, blo, bhi, _OUTSIDE)
+        sd_c = wall_distance(lab_c == SOLID, _distance_clip(sigma))
+        clu_c = _extract(clusters, blo, bhi, 0)
+
+        def work(cid):
+            b = bb[cid - 1]
+            lo = np.maximum(np.maximum(own_lo, b[:3] - 1) - halo, blo)
+            hi = np.minimum(np.minimum(own_hi, b[3:]) + halo, bhi)
+            sl = tuple(slice(int(a - o), int(z - o)) for a, z, o in zip(lo, hi, blo, strict=True))
+            return cid, _cluster_box_sums(lab_c[sl], clu_c[sl], cid, sd_c[sl],
+                                          (lo + pad + 1).astype(float), own_lo + pad + 1,
+                                          own_hi + pad + 1, sigma, levels, key_dims)
+
+        # largest boxes first so that the threads finish together
+        ids = ids[np.argsort(-np.prod(bb[ids - 1, 3:] - bb[ids - 1, :3], axis=1), kind="stable")]
+        return list(pool.map(work, ids)) if pool is not None else [work(c) for c in ids]
+
     acc: dict[int, list] = {}
-    for rz in ranges[0]:
-        for ry in ranges[1]:
-            for rx in ranges[2]:
-                own_lo = np.array([rz[0], ry[0], rx[0]])
-                own_hi = np.array([rz[1], ry[1], rx[1]])
-                # clusters whose mesh cells [bbox_lo − 1, bbox_hi) meet the owned range
-                hit = np.all((bb[:, :3] - 1 < own_hi) & (bb[:, 3:] > own_lo), axis=1)
-                ids = np.flatnonzero(hit) + 1
-                if ids.size == 0:
-                    continue
-                blo = np.maximum(own_lo - halo, -pad)
-                bhi = np.minimum(own_hi + halo, shape + pad)
-                lab_c = _extract(labels, blo, bhi, _OUTSIDE)
-                sd_c = wall_distance(lab_c == SOLID, _distance_clip(sigma))
-                clu_c = _extract(clusters, blo, bhi, 0)
 
-                def work(cid, own_lo=own_lo, own_hi=own_hi, blo=blo, bhi=bhi, lab_c=lab_c,
-                         sd_c=sd_c, clu_c=clu_c):
-                    b = bb[cid - 1]
-                    lo = np.maximum(np.maximum(own_lo, b[:3] - 1) - halo, blo)
-                    hi = np.minimum(np.minimum(own_hi, b[3:]) + halo, bhi)
-                    sl = tuple(slice(int(a - o), int(z - o)) for a, z, o in zip(lo, hi, blo,
-                                                                                 strict=True))
-                    return cid, _cluster_box_sums(lab_c[sl], clu_c[sl], cid, sd_c[sl],
-                                                  (lo + pad + 1).astype(float),
-                                                  own_lo + pad + 1, own_hi + pad + 1,
-                                                  sigma, levels, key_dims)
+    def collect(part):
+        for cid, r in part:
+            acc.setdefault(int(cid), []).append(r)
 
-                if threads > 1 and ids.size > 1:
-                    with ThreadPoolExecutor(threads) as pool:
-                        results = list(pool.map(work, ids))
-                else:
-                    results = [work(c) for c in ids]
-                for cid, r in results:
-                    acc.setdefault(int(cid), []).append(r)
+    if threads == 1:
+        for box in boxes:
+            collect(chunk(*box))
+    else:
+        with ThreadPoolExecutor(threads) as pool:
+            if len(boxes) == 1:          # whole clusters: threads over clusters
+                collect(chunk(*boxes[0], pool=pool))
+            else:                        # chunks: threads over chunks, ≤ ``threads`` in memory
+                for part in pool.map(lambda box: chunk(*box), boxes):
+                    collect(part)
     return _finish(acc, ncl, levels, sigma, h)
 
 
@@ -676,9 +861,10 @@ def _count_loops(segs: np.ndarray, seg_cluster: np.ndarray, ncl: int) -> np.ndar
 def mesh_totals(table: pd.DataFrame) -> dict[str, float]:
     """Whole-state totals of a ``mesh_measures`` table.
 
-    Areas, ∫K, Σκ dA and the contact line are summed over resolved clusters; ``curvature_nw`` is
-    Σ κ dA / Σ dA and ``curvature_nw_std`` the area-weighted spread; ``unresolved_clusters`` counts
-    the rest.
+    Areas are summed over all clusters (band-extrapolated for resolved clusters, classified by the
+    phase across each face for the others); ∫K, loops and the contact line over resolved clusters;
+    ``curvature_nw`` is Σ κ dA / Σ dA and ``curvature_nw_std`` the area-weighted spread;
+    ``unresolved_clusters`` counts clusters flagged unresolved.
     """
     if len(table) == 0:
         nan = float("nan")
@@ -692,8 +878,8 @@ def mesh_totals(table: pd.DataFrame) -> dict[str, float]:
     k2 = float(table["curv2_area_nw"].sum())
     mean = ka / w if w > 0 else float("nan")
     std = math.sqrt(max(k2 / w - mean**2, 0.0)) if w > 0 else float("nan")
-    return {"area_nw_mesh": float(r["area_nw_mesh"].sum()),
-            "area_ns_mesh": float(r["area_ns_mesh"].sum()),
+    return {"area_nw_mesh": float(table["area_nw_mesh"].sum()),
+            "area_ns_mesh": float(table["area_ns_mesh"].sum()),
             "curvature_nw": mean, "curvature_nw_std": std, "curv_area_nw": ka,
             "curv_weight_nw": w, "gauss_nw": float(r["gauss_nw"].sum()),
             "contact_loops": int(r["contact_loops"].sum()),
