@@ -1,7 +1,7 @@
 """Mesh measures of the non-wetting phase against closed forms and reference libraries.
 
-Closed forms: sphere, spherical shell, torus, cylinder and spherical cap (any geometry handbook, e.g.
-Bronshtein et al. 2015, §3.3; `wetpath.synthetic.*_exact`). Reference libraries: scikit-image
+Closed forms: sphere, spherical shell, torus, cylinder and spherical cap (any geometry handbook,
+e.g. Bronshtein et al. 2015, §3.3; `wetpath.synthetic.*_exact`). Reference libraries: scikit-image
 (`euler_number`, `mesh_surface_area`), scipy (`distance_transform_edt`) and trimesh.
 """
 
@@ -172,3 +172,26 @@ def test_no_nonwetting_phase_and_bad_input():
         mesh_measures(labels, voxel_size=(1.0, 1.0, 2.0))
     with pytest.raises(WetpathError, match="shape"):
         mesh_measures(labels, clusters=np.zeros((4, 4, 4), int))
+
+
+def test_compiled_kernels_match_numpy_oracles():
+    from wetpath import _mesh as m
+
+    labels = synthetic.cap_on_plate(12, 70, normal=(1, 0.3, 0.2), seed=8)
+    verts0, faces, edges, face_edges = m._raw_mesh(labels == 3, 1.0)
+    smooth = m._taubin_kernel(verts0.copy(), edges, 10, m.TAUBIN_LAMBDA, m.TAUBIN_MU)
+    np.testing.assert_allclose(smooth, m.taubin_smooth(verts0, faces), atol=1e-10)
+    for got, ref in zip(m._vertex_kernel(smooth, faces), m.vertex_measures(smooth, faces),
+                        strict=True):
+        np.testing.assert_allclose(got, ref, rtol=1e-9, atol=1e-9)
+    rng = np.random.default_rng(0)
+    nv, nf = len(verts0), len(faces)
+    d = rng.uniform(0, 9, nv)
+    d3 = np.sort(d[faces], axis=1)
+    args = (d3, rng.uniform(0, 1, nf), rng.normal(size=nf), rng.random(nf) > 0.1,
+            rng.normal(size=nv), d, rng.random(nv) > 0.1, m.band_levels(1.0))
+    for got, ref in zip(m._band_kernel(*args), m._band_sums(*args), strict=True):
+        np.testing.assert_allclose(got, ref, rtol=1e-10, atol=1e-9)
+    args = (d3.mean(axis=1), rng.random(nf) > 0.9, faces, face_edges, rng.random(nv) > 0.3,
+            rng.random(len(edges)) > 0.3, rng.random(nf) > 0.3, m.band_levels(1.0), len(edges))
+    np.testing.assert_array_equal(m._patch_euler_kernel(*args), m._patch_euler(*args))

@@ -1,8 +1,9 @@
 """Topological (Gauss–Bonnet) contact angle against closed forms.
 
-Closed forms: a spherical cap of n on a plate has ∫_nw K dA = 2π(1 + cos θ_w), χ_n = 1 and one loop,
-so the flat formula cos θ_w = 1 − (4πχ_n − ∫_nw K)/(2π N_loops) (Sun et al. 2020, Geophys. Res.
-Lett. 47, e2019GL086151; Blunt, Akai & Bijeljic 2020, J. Colloid Interface Sci. 576, 99–108) is exact.
+Closed forms: a spherical cap of n on a plate has ∫_nw K dA = 2π(1 + cos θ_w), χ_n = 1 and one
+loop, so the flat formula cos θ_w = 1 − (4πχ_n − ∫_nw K)/(2π N_loops) (Sun et al. 2020, Geophys.
+Res. Lett. 47, e2019GL086151; Blunt, Akai & Bijeljic 2020, J. Colloid Interface Sci. 576, 99–108)
+is exact.
 In a tube the deficit per loop is 2π sin θ_w (menisci are spherical caps of radius r/|cos θ_w|,
 METHODS.md §2), so the flat formula reads arccos(1 − sin θ_w) instead of θ_w.
 """

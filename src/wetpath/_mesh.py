@@ -1,49 +1,58 @@
-"""Meshes of the non-wetting phase: areas, curvatures, Gauss–Bonnet sums and contact loops per cluster.
+"""Meshes of the non-wetting phase: areas, curvatures, Gauss–Bonnet sums and contact loops.
 
-Each non-wetting (n) cluster is meshed on its own, inside its bounding box plus a halo, and — for the
-whole state — chunk by chunk, so that only the neighbourhood of the n phase is meshed and peak memory is
+Each non-wetting (n) cluster is meshed on its own, inside its bounding box plus a halo, and
+chunk by chunk, so that only the neighbourhood of the n phase is meshed and peak memory is
 bounded by a few chunks:
 
-1. the cluster's indicator is blurred by a Gaussian of ``sigma`` voxels and meshed by marching cubes at
-   0.5 (Lorensen & Cline 1987); the mesh is closed by zero padding at the array border;
+1. the cluster's indicator is blurred by a Gaussian of ``sigma`` voxels and meshed by marching
+   cubes at 0.5 (Lorensen & Cline 1987); zero padding closes the mesh at the array border;
 2. Taubin (1995) smoothing, λ = 0.5, μ = −0.53, 10 iterations, uniform umbrella weights;
-3. every vertex gets its wall distance d (signed distance to the voxelised solid surface, smoothed) and
-   the solid normal ν_s = ∇d/|∇d|; faces whose far side is outside the array or the field of view are
-   *border* faces and are left out of every sum;
-4. **wall-distance band extrapolation** (issue 3): a quantity Q(m) summed over the part of the mesh
-   farther than m from the solid is evaluated at the levels m = 3σ … 3σ + 3 and a fit in m is evaluated
-   at m = 0. This removes the rounded crease that blur and smoothing put at the contact line (which
-   otherwise leaks half the crease's concentrated Gaussian curvature into ∫_nw K). Linear fits for the
-   n–w area and ∫_nw K (exact for a spherical cap on a plane: zone area and zone ∫K are linear in
-   height), quadratic fits for the contact-line length and the footprint (n–s) area;
-5. mean curvature by the cotangent Laplacian with mixed (Voronoi) areas (Meyer, Desbrun, Schröder & Barr
-   2003), area-weighted over vertices at least 4σ from the solid, corrected for the inward shift of the
-   blurred level set (mean-curvature flow over time σ²/2: δ = σ²κ/2, so κ = κ'/(1 + σ²κ'²/4));
-   sign: κ > 0 where the interface is convex toward w (a ball of n: +2/R);
+3. every vertex gets its wall distance d (signed distance to the voxelised solid surface,
+   smoothed) and the solid normal ν_s = ∇d/|∇d|; faces whose far side is outside the array or
+   the field of view are *border* faces and are left out of every sum; the other faces are
+   classified n–w or n–s by the phase across them;
+4. **wall-distance band extrapolation** (issue 3): a quantity Q(m) summed over the part of the
+   mesh farther than m from the solid is evaluated at levels m = 3σ … 3σ + 3 and a fit in m is
+   evaluated at m = 0. This removes the rounded crease that blur and smoothing leave at the
+   contact line (which otherwise leaks half the crease's concentrated Gaussian curvature into
+   ∫_nw K). Linear fits for the n–w area and ∫_nw K (exact for a spherical cap on a plane: the
+   zone area and zone ∫K are linear in height), quadratic fits for the contact-line length and
+   for the footprint (n–s) area, which is the flux of ∇d through the mesh below m
+   (divergence theorem; it does not see the shape of the crease);
+5. mean curvature by the cotangent Laplacian with mixed (Voronoi) areas (Meyer, Desbrun,
+   Schröder & Barr 2003), area-weighted over vertices at least 4σ from the solid, corrected for
+   the inward shift of the blurred level set (mean-curvature flow over a time σ²/2 moves it by
+   δ = σ²κ/2, so κ = κ'/(1 + σ²κ'²/4)); κ > 0 where the interface is convex toward w (a ball of
+   n: +2/R);
 6. Gaussian curvature by angle deficits (discrete Gauss–Bonnet: Σ deficits = 2π(V − E + F));
-7. contact loops as the level curves d = m of the mesh (boundary cycles of the n–w patch), their length,
-   and along them the solid's normal curvature ∫ k_n^s ds = Σ Δt·ν_s and geodesic curvature
-   ∫ k_g^s ds = Σ Δt·(ν_s × t) (the inputs of the curvature-corrected topological angle);
+7. contact loops as the level curves d = m of the mesh (boundary cycles of the n–w patch),
+   their length, and along them the solid's normal and geodesic curvature, ∫ k_n^s ds = Σ Δt·ν_s
+   and ∫ k_g^s ds = Σ Δt·(ν_s × t) (inputs of the curvature-corrected topological angle);
 8. χ of the closed n mesh, (V − E + F)/2, and χ of the n–w patch.
 
 Every count and sum is attributed to the chunk that owns the lattice cell of the element (face,
-vertex, edge) of the unsmoothed mesh, so sums over chunks equal the whole-array sums; a halo of
-``_halo(sigma)`` voxels keeps the smoothed geometry of owned elements identical.
+vertex, edge) of the unsmoothed mesh, so sums over chunks equal whole-array sums; a halo of
+``_halo(sigma)`` voxels keeps the smoothed geometry of owned elements the same (measured:
+chunked and whole results agree to ~1e-6 relative).
 
-Clusters whose interface rises less than 3σ + 4 voxels above the solid (thin films, flat strongly
-non-wetting caps) cannot be band-extrapolated and are flagged ``resolved = False`` with NaN
-band quantities.
+Clusters whose interface rises less than 3σ + 4 voxels above the solid (thin films, flat
+strongly non-wetting caps) cannot be band-extrapolated: they are flagged ``resolved = False``,
+their ∫K, loops and line quantities are NaN/0 and their areas are the raw sums of faces
+classified by the phase across them.
 
 References
 ----------
-Lorensen, W. E. & Cline, H. E. (1987). Marching cubes. *ACM SIGGRAPH Computer Graphics* 21(4), 163–169.
-Taubin, G. (1995). Curve and surface smoothing without shrinkage. *Proc. ICCV*, 852–857.
-Meyer, M., Desbrun, M., Schröder, P. & Barr, A. H. (2003). Discrete differential-geometry operators for
-triangulated 2-manifolds. *Visualization and Mathematics III*, 35–57.
-Sun, C., McClure, J. E., Mostaghimi, P., Herring, A. L., Berg, S. & Armstrong, R. T. (2020). Probing
-effective wetting in subsurface systems. *Geophys. Res. Lett.* 47, e2019GL086151.
-Blunt, M. J., Akai, T. & Bijeljic, B. (2020). Thermodynamically consistent contact angles in porous
-media: a Gauss–Bonnet approach. *J. Colloid Interface Sci.* 576, 99–108.
+Lorensen, W. E. & Cline, H. E. (1987). Marching cubes. *ACM SIGGRAPH Comput. Graph.* 21(4),
+163–169.
+Taubin, G. (1995). Curve and surface smoothing without shrinkage. *Proc. 5th ICCV*, 852–857.
+Meyer, M., Desbrun, M., Schröder, P. & Barr, A. H. (2003). Discrete differential-geometry
+operators for triangulated 2-manifolds. *Visualization and Mathematics III*, 35–57.
+Felzenszwalb, P. F. & Huttenlocher, D. P. (2012). Distance transforms of sampled functions.
+*Theory of Computing* 8, 415–428.
+Sun, C., McClure, J. E., Mostaghimi, P., Herring, A. L., Berg, S. & Armstrong, R. T. (2020).
+Probing effective wetting in subsurface systems. *Geophys. Res. Lett.* 47, e2019GL086151.
+Blunt, M. J., Akai, T. & Bijeljic, B. (2020). Thermodynamically consistent contact angles in
+porous media: a Gauss–Bonnet approach. *J. Colloid Interface Sci.* 576, 99–108.
 """
 
 from __future__ import annotations
@@ -173,7 +182,8 @@ def wall_distance(solid: np.ndarray, clip: float) -> np.ndarray:
     ±``clip`` and smoothed by a Gaussian of 1 voxel (removes the staircase of tilted walls).
 
     The zero level lies half-way between solid and pore voxel centres (exact Euclidean distance
-    transform of Felzenszwalb & Huttenlocher 2012, test oracle ``scipy.ndimage.distance_transform_edt``).
+    transform of Felzenszwalb & Huttenlocher 2012; test oracle
+    ``scipy.ndimage.distance_transform_edt``).
     """
     out = np.full(solid.shape, clip, np.float32)
     if solid.any():
@@ -256,7 +266,8 @@ def vertex_measures(verts: np.ndarray, faces: np.ndarray):
     hv = np.empty_like(p)
     for k in range(3):
         k1, k2 = (k + 1) % 3, (k + 2) % 3
-        hv[:, k] = cots[:, k2, None] * (p[:, k] - p[:, k1]) + cots[:, k1, None] * (p[:, k] - p[:, k2])
+        hv[:, k] = (cots[:, k2, None] * (p[:, k] - p[:, k1])
+                    + cots[:, k1, None] * (p[:, k] - p[:, k2]))
     hvec = np.stack([np.bincount(fl, hv[..., c].ravel(), minlength=nv) for c in range(3)], axis=1)
     wn = normal * area[:, None]
     vn = np.stack([np.bincount(fl, np.repeat(wn[:, c], 3), minlength=nv) for c in range(3)], axis=1)
@@ -418,6 +429,19 @@ def _patch_euler_kernel(dface, border, faces, face_edges, v_own, e_own, f_own, l
     return out
 
 
+def _patch_euler(dface, border, faces, face_edges, v_own, e_own, f_own, levels, n_edges):
+    """Reference (numpy) implementation of ``_patch_euler_kernel``."""
+    out = np.zeros(len(levels))
+    for j, m in enumerate(levels):
+        patch = (dface > m) & ~border
+        v_used = np.zeros(len(v_own), bool)
+        v_used[faces[patch].ravel()] = True
+        e_used = np.zeros(n_edges, bool)
+        e_used[face_edges[patch].ravel()] = True
+        out[j] = np.sum(v_used & v_own) - np.sum(e_used & e_own) + np.sum(patch & f_own)
+    return out
+
+
 def _band_sums(d3, farea, flux, good_f, deficit, d, good_v, levels):
     """Reference (numpy) implementation of ``_band_kernel``."""
     a, lid, k = (np.zeros(len(levels)) for _ in range(3))
@@ -537,7 +561,8 @@ def _cluster_box_sums(lab, clu, cid, sd, lo, own_lo, own_hi, sigma, levels, key_
     nl = len(levels)
     res = {"A": np.zeros(nl), "K": np.zeros(nl), "Lid": np.zeros(nl), "L": np.zeros(nl),
            "G": np.zeros(nl), "N": np.zeros(nl), "chi": np.zeros(nl), "V": 0.0, "E": 0.0, "F": 0.0,
-           "kA": 0.0, "k2A": 0.0, "Anw_raw": 0.0, "Ans_raw": 0.0, "wA": 0.0, "cosA": 0.0, "cosW": 0.0, "dmax": -np.inf,
+           "kA": 0.0, "k2A": 0.0, "Anw_raw": 0.0, "Ans_raw": 0.0, "wA": 0.0, "cosA": 0.0,
+           "cosW": 0.0, "dmax": -np.inf,
            "segs": np.zeros((0, 4), np.int64)}
     verts0, faces, edges, face_edges = _raw_mesh(clu == cid, sigma)
     if len(faces) == 0:
@@ -582,7 +607,7 @@ def _cluster_box_sums(lab, clu, cid, sd, lo, own_lo, own_hi, sigma, levels, key_
     dface = (d3[:, 0] + d3[:, 1] + d3[:, 2]) / 3.0
     gface = _unit(grad[faces[:, 0]] + grad[faces[:, 1]] + grad[faces[:, 2]])
     flux = farea * np.einsum("ij,ij->i", gface, fnorm)
-    # volume term of the footprint (lid) flux identity: Δd (7-point stencil) over the cluster's voxels
+    # volume term of the footprint flux identity: Δd (7-point stencil) over the cluster's voxels
     vox = np.argwhere(clu == cid)
     vox = vox[owned(vox + lo.astype(np.int64))]
     vd = sd[vox[:, 0], vox[:, 1], vox[:, 2]]
@@ -665,13 +690,15 @@ def _check_voxel_size(voxel_size) -> float:
     if vs.size == 3 and np.allclose(vs, vs[0]):
         vs = vs[:1]
     if vs.size != 1 or not np.isfinite(vs[0]) or vs[0] <= 0:
-        raise WetpathError(f"voxel_size must be one positive number (isotropic), got {voxel_size!r}",
+        raise WetpathError(f"voxel_size must be one positive number (isotropic), got "
+                           f"{voxel_size!r}",
                            step="mesh")
     return float(vs[0])
 
 
-def mesh_measures(labels: np.ndarray, voxel_size: float = 1.0, *, clusters: np.ndarray | None = None,
-                  connectivity: int = 26, sigma: float = 1.0, chunks: int | tuple | None = None,
+def mesh_measures(labels: np.ndarray, voxel_size: float = 1.0, *,
+                  clusters: np.ndarray | None = None, connectivity: int = 26,
+                  sigma: float = 1.0, chunks: int | tuple | None = None,
                   threads: int | None = None) -> pd.DataFrame:
     """Mesh-based measures of every non-wetting cluster.
 

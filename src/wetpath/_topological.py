@@ -1,7 +1,7 @@
 """Topological (Gauss–Bonnet) contact angle per non-wetting cluster and per state.
 
-For an n cluster that does not touch the border, its closed boundary is the n–w patch and the n–s patch
-glued along the contact loops, and Gauss–Bonnet gives (METHODS.md §2)
+For an n cluster that does not touch the border, its closed boundary is the n–w patch and the
+n–s patch glued along the contact loops, and Gauss–Bonnet gives (METHODS.md §2)
 
     4π χ_n = ∫_nw K dA + ∫_ns K dA + ∫_L κ_d ds.
 
@@ -17,11 +17,10 @@ cos θ_w is nearest the coarse band estimate −⟨ν_nw · ν_s⟩ is taken.
 
 References
 ----------
-Sun, C., McClure, J. E., Mostaghimi, P., Herring, A. L., Berg, S. & Armstrong, R. T. (2020). Probing
-effective wetting in subsurface systems. *Geophys. Res. Lett.* 47, e2019GL086151.
-Sun, C., McClure, J. E., Mostaghimi, P., Herring, A. L., Shabaninejad, M., Berg, S. & Armstrong, R. T.
-(2020). Linking continuum-scale state of wetting to pore-scale contact angles in porous media.
-*J. Colloid Interface Sci.* 578, 106–115.
+Sun, C., McClure, J. E., Mostaghimi, P., Herring, A. L., Berg, S. & Armstrong, R. T. (2020).
+Probing effective wetting in subsurface systems. *Geophys. Res. Lett.* 47, e2019GL086151.
+Sun, C., McClure, J. E., et al. (2020). Linking continuum-scale state of wetting to pore-scale
+contact angles in porous media. *J. Colloid Interface Sci.* 578, 106–115.
 Blunt, M. J., Akai, T. & Bijeljic, B. (2020). Thermodynamically consistent contact angles in porous
 media: a Gauss–Bonnet approach. *J. Colloid Interface Sci.* 576, 99–108.
 """
