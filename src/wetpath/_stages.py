@@ -245,8 +245,8 @@ def history_series(states_csv: str | os.PathLike, increments_csv: str | os.PathL
     branches = branch_summary(history)
     write_history_tables(out, history, branches)
     picked = _first_mid_last(list(stores))
-    slices = mid_plane_slices([(Path(p).stem, np.asarray(open_step(p).labels[...]))
-                               for p in picked]) if picked else None
+    slices, axes = mid_plane_slices([(Path(p).stem, np.asarray(open_step(p).labels[...]))
+                                     for p in picked]) if picked else (None, ("y", "x"))
     warnings = flag_warnings(increments)
     if "unresolved_clusters" in states:
         n = int(states["unresolved_clusters"].fillna(0).sum())
@@ -257,7 +257,7 @@ def history_series(states_csv: str | os.PathLike, increments_csv: str | os.PathL
     return write_report(out / "report.html", history=history, branches=branches, states=states,
                         increments=increments, config=dict(config or {}),
                         provenance=provenance, warnings=warnings, slices=slices,
-                        figures_dir=out / "figures", title=title)
+                        figures_dir=out / "figures", title=title, slice_axes=axes)
 
 
 def _first_mid_last(items: list) -> list:

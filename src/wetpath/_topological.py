@@ -125,19 +125,44 @@ def topological_angle(labels: np.ndarray, voxel_size: float = 1.0, *,
     J. Colloid Interface Sci. 576, 99–108.
     """
     lab = to_canonical(labels, codes, step="topological angle")
+    if clusters is None:
+        clusters, _ = ndimage.label(lab == NONWETTING, np.ones((3, 3, 3), bool))
+    if int(clusters.max()) == 0:
+        return topological_from_clusters(pd.DataFrame())
+    table = mesh_measures(lab, voxel_size, clusters=clusters, sigma=sigma, chunks=chunks,
+                          threads=threads)
+    table["touches_border"] = _touching_border(lab, clusters)[table["cluster"].to_numpy()]
+    return topological_from_clusters(table)
+
+
+def topological_from_clusters(table: pd.DataFrame) -> dict:
+    """Topological angle of a state from its per-cluster measures (no image needed).
+
+    Parameters
+    ----------
+    table : DataFrame
+        One row per n cluster with the mesh measures of :func:`wetpath._mesh.mesh_measures`
+        (``gauss_nw, contact_loops, euler_n_mesh, euler_nw_patch, geodesic_solid_line,
+        normal_curv_solid_line, cos_band_nw, resolved, max_wall_distance``) and
+        ``touches_border``. ``euler_n`` is used where ``euler_n_mesh`` is absent.
+
+    Returns
+    -------
+    dict
+        As :func:`topological_angle`.
+    """
     nan = float("nan")
     out = {"theta_topo_deg": nan, "theta_topo_median_deg": nan, "theta_topo_lo_deg": nan,
            "theta_topo_hi_deg": nan, "theta_topo_corrected_deg": nan, "clusters_used": 0,
            "flag": "ok", "clusters": pd.DataFrame()}
-    if clusters is None:
-        clusters, _ = ndimage.label(lab == NONWETTING, np.ones((3, 3, 3), bool))
-    if int(clusters.max()) == 0:
+    if len(table) == 0:
         out["flag"] = "no_nonwetting_phase"
         return out
-    table = mesh_measures(lab, voxel_size, clusters=clusters, sigma=sigma, chunks=chunks,
-                          threads=threads)
-    table["touches_border"] = _touching_border(lab, clusters)[table["cluster"].to_numpy()]
-    table["euler_n"] = table["euler_n_mesh"]
+    table = table.copy()
+    table["touches_border"] = table["touches_border"].astype(bool)
+    table["resolved"] = table["resolved"].astype(bool)
+    if "euler_n_mesh" in table:
+        table["euler_n"] = table["euler_n_mesh"]
     table["deficit"] = 4 * np.pi * table["euler_n"] - table["gauss_nw"]
     loops = table["contact_loops"].to_numpy()
     with np.errstate(divide="ignore", invalid="ignore"):
