@@ -88,3 +88,14 @@ def test_run_without_snakefile(tmp_path):
     (tmp_path / "c.yaml").write_text("series: {}\n")
     out = _wetpath("run", "--directory", tmp_path, "--configfile", tmp_path / "c.yaml")
     assert out.returncode == 2 and "no Snakefile here" in out.stderr
+
+
+def test_demo_writes_the_contracted_layout(tmp_path):
+    pytest.importorskip("wetpath._demo", reason="wetpath._demo is written on the demo branch")
+    assert main(["demo", str(tmp_path / "d"), "--size", "32"]) == 0
+    for kind in ("labels", "grayscale"):
+        times = pd.read_csv(tmp_path / "d" / kind / "times.csv")
+        assert list(times.columns[:3]) == ["step", "time_s", "file"]
+        assert all((tmp_path / "d" / kind / f).exists() for f in times["file"])
+    assert (tmp_path / "d" / "grayscale" / "dry.tif").exists()
+    assert (tmp_path / "d" / "scenario.json").exists()

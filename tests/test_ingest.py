@@ -159,9 +159,12 @@ def test_step_table_ok(tmp_path):
     ("step,time_s,file\ns0,nan,a.tif\n", "finite"),
 ])
 def test_step_table_errors(tmp_path, text, match):
+    folder = _times(tmp_path, text)
+    before = fingerprint(folder / "times.csv")
     with pytest.raises(WetpathError, match=match) as info:
-        read_step_table(_times(tmp_path, text), series="exp1")
+        read_step_table(folder, series="exp1")
     assert str(info.value).startswith("series exp1: ") and "times.csv" in str(info.value)
+    assert fingerprint(folder / "times.csv") == before
 
 
 def test_step_table_missing(tmp_path):

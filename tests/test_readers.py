@@ -168,3 +168,15 @@ def test_raw_round_trip_property(tmp_path_factory, shape, dtype, byte_order, off
     path.write_bytes(b"\x07" * offset + arr.astype(dt).tobytes())
     vol = read_volume(path, dtype=dtype, shape=shape, byte_order=byte_order, offset=offset)
     np.testing.assert_array_equal(np.asarray(vol), arr)
+
+
+def test_imagej_hyperstack_round_trip(tmp_path, volume):
+    tifffile.imwrite(tmp_path / "ij.tif", volume, imagej=True)
+    with read_volume(tmp_path / "ij.tif") as vol:
+        _check(vol, volume)
+
+
+def test_tiff_with_channels_rejected(tmp_path):
+    tifffile.imwrite(tmp_path / "rgb.tif", np.zeros((3, 8, 8, 3), np.uint8), photometric="rgb")
+    with pytest.raises(WetpathError, match=r"rgb\.tif: TIFF image has shape"):
+        read_volume(tmp_path / "rgb.tif")

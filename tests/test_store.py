@@ -108,3 +108,11 @@ def test_atomic_write_text_replaces(tmp_path):
     atomic_write_text(tmp_path / "t.csv", "b\n")
     assert (tmp_path / "t.csv").read_text() == "b\n"
     assert [p.name for p in tmp_path.iterdir()] == ["t.csv"]
+
+
+def test_step_store_reads_back_as_input(tmp_path, tiny_volume):
+    from wetpath import read_volume
+
+    level0, level1 = create_step_store(tmp_path / "s.zarr", tiny_volume.shape, 1.0)
+    level0[:] = tiny_volume
+    np.testing.assert_array_equal(np.asarray(read_volume(tmp_path / "s.zarr")), tiny_volume)

@@ -197,29 +197,37 @@ def _tiff(path: Path, dataset, step: str) -> Volume:
 
     tf = tifffile.TiffFile(path)
     try:
-        shapes = [tuple(p.shape) for p in tf.pages]
-        if len(set(shapes)) > 1:
-            odd = next(i for i, s in enumerate(shapes) if s != shapes[0])
-            raise WetpathError(f"TIFF pages of inconsistent shape: page 0 is {shapes[0]}, page "
-                               f"{odd} is {shapes[odd]}", step=step, path=path)
-        series = tf.series[0]
-        dtype = series.dtype
-        if len(shapes) == 1 and len(shapes[0]) == 3:  # one volumetric page
-            data = series.asarray()
+        by_series = len(tf.series) == 1
+        if by_series:
+            series = tf.series[0]
+            dtype, shape = series.dtype, tuple(series.shape)
+            shape = (1, *shape) if len(shape) == 2 else shape
+        else:  # pages written one by one: a volume if all are 2D planes of one shape
+            shapes = [tuple(p.shape) for p in tf.pages]
+            odd = next((i for i, s in enumerate(shapes) if s != shapes[0]), None)
+            if odd is not None:
+                raise WetpathError(f"TIFF pages of inconsistent shape: page 0 is {shapes[0]}, "
+                                   f"page {odd} is {shapes[odd]}", step=step, path=path)
+            if len(shapes[0]) != 2 or len(tf.series) != len(shapes):
+                raise WetpathError(f"TIFF file holds {len(tf.series)} image series; expected "
+                                   "one volume", step=step, path=path)
+            dtype, shape = tf.pages[0].dtype, (len(shapes), *shapes[0])
+        if len(shape) != 3:
+            raise WetpathError(f"TIFF image has shape {shape}; expected planes (z, y, x)",
+                               step=step, path=path)
+        if by_series and len(series.pages) != shape[0]:  # one volumetric page: read it whole
+            data = series.asarray().reshape(shape)
             tf.close()
-            return Volume(path, data.shape, dtype, lambda z0, z1: data[z0:z1])
-        if len(shapes[0]) != 2:
-            raise WetpathError(f"TIFF pages must be 2D greyscale planes, got page shape "
-                               f"{shapes[0]}", step=step, path=path)
-        shape = (len(shapes), *shapes[0])
+            return Volume(path, shape, dtype, lambda z0, z1: data[z0:z1])
     except BaseException:
         tf.close()
         raise
 
-    def read(z0, z1):
+    def read(z0, z1):  # page by page (ImageJ files beyond 4 GB included: virtual frames)
         if z1 <= z0:
             return np.empty((0, *shape[1:]), dtype)
-        return tf.asarray(key=range(z0, z1)).reshape(z1 - z0, *shape[1:])
+        pages = tf.asarray(key=range(z0, z1), series=0 if by_series else None)
+        return pages.reshape(z1 - z0, *shape[1:])
 
     return Volume(path, shape, dtype, read, tf.close)
 

@@ -194,6 +194,10 @@ def _cmd_run(args) -> int:
     extra = [a for a in args.snakemake_args if a != "--"]
     cmd = [sys.executable, "-m", "snakemake", "--snakefile", str(snakefile), "--directory",
            str(workdir), "--configfile", str(configfile), "--cores", str(args.cores)]
+    # Snakemake looks for profiles/default next to the Snakefile; ours sits in workflow/profiles.
+    workflow_profile = snakefile.parent / "workflow" / "profiles" / "default"
+    if workflow_profile.is_dir():
+        cmd += ["--workflow-profile", str(workflow_profile)]
     cmd += (["--profile", args.profile] if args.profile else []) + (
         ["--dry-run"] if args.dry_run else []) + extra
     env = dict(os.environ)  # rules call `python -m wetpath`: put this interpreter first on PATH

@@ -8,6 +8,7 @@ from pathlib import Path
 import yaml
 from snakemake.utils import validate
 
+from wetpath._errors import WetpathError
 from wetpath._ingest import read_step_table
 from wetpath._provenance import code_hash
 from wetpath._store import voxel_triple
@@ -50,6 +51,12 @@ def _check_series(name, cfg):
 STEPS = {}
 for _name, _cfg in SERIES.items():
     _check_series(_name, _cfg)
+    _demo_out = Path(config.get("demo", {}).get("out", "demo-data"))
+    if "demo" in config and _demo_out in [_series_folder(_name), *_series_folder(_name).parents] \
+            and not _series_folder(_name).exists():
+        raise WetpathError(f"demo series not written yet: run `wetpath run` (writes it first) or "
+                           f"`wetpath demo {_demo_out}`", step=f"series {_name}",
+                           path=_series_folder(_name))
     STEPS[_name] = read_step_table(_series_folder(_name), times=_cfg["times"], series=_name)
     if len(STEPS[_name]) < 2:
         print(f"note: series {_name} has one step: state measures only, no increments")
