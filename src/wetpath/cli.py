@@ -240,6 +240,8 @@ def _add_measure(p):
     p.add_argument("clusters", type=Path, help="cluster label store of the same step")
     p.add_argument("out_folder", type=Path, help="folder for <step>.csv and its companions")
     p.add_argument("--step", help="step name (default: from the store)")
+    p.add_argument("--label", action="store_true",
+                   help="write the cluster label store first (as `wetpath label`)")
     p.add_argument("--settings", type=_json, default={},
                    help="JSON: sigma (voxels), connectivity, perturb, geometric")
     _threads(p)
@@ -248,9 +250,12 @@ def _add_measure(p):
 @subcommand("measure", _add_measure,
             "geometry, topological and geometric angles of one step (tables per state/cluster)")
 def _cmd_measure(args) -> int:
-    from ._stages import measure_step
+    from ._stages import label_step, measure_step
 
     s = args.settings
+    if args.label:
+        label_step(args.store, args.clusters, connectivity=int(s.get("connectivity", 26)),
+                   threads=args.threads)
     measure_step(args.store, args.clusters, args.out_folder, step=args.step,
                  sigma=float(s.get("sigma", 1.0)), connectivity=int(s.get("connectivity", 26)),
                  perturb=bool(s.get("perturb", True)), geometric=bool(s.get("geometric", True)),
@@ -266,36 +271,27 @@ def _add_track(p):
     p.add_argument("--voxel-size-um", type=float, required=True, help="voxel edge, µm")
     p.add_argument("--shift", type=int, nargs=3, metavar=("DZ", "DY", "DX"),
                    help="rigid drift of the later step, voxels")
+    p.add_argument("--increment", nargs=5, metavar=("MEASURES", "STEP_FROM", "STEP_TO",
+                                                    "OUT_CSV", "OUT_FAMILIES"),
+                   help="also the energy-balance angle of the increment, for the field of view "
+                        "(OUT_CSV) and per cluster family (OUT_FAMILIES), from the measure tables "
+                        "in the folder MEASURES")
+    p.add_argument("--settings", type=_json, default={},
+                   help="JSON keyword arguments of wetpath.energy_balance_angle")
     _threads(p)
 
 
-@subcommand("track", _add_track, "match the clusters of two steps and classify the events")
+@subcommand("track", _add_track,
+            "match the clusters of two steps, classify the events, optionally the energy balance")
 def _cmd_track(args) -> int:
-    from ._stages import track_step
+    from ._stages import increment_step, track_step
 
     track_step(args.clusters_a, args.clusters_b, args.out_overlaps, args.out_events,
                voxel_size_um=args.voxel_size_um, shift=args.shift, threads=args.threads)
-    return 0
-
-
-def _add_increment(p):
-    p.add_argument("measures", type=Path, help="folder of the measure tables")
-    p.add_argument("step_from", help="earlier step")
-    p.add_argument("step_to", help="later step")
-    p.add_argument("overlaps", type=Path, help="overlap table of the increment")
-    p.add_argument("events", type=Path, help="events table of the increment")
-    p.add_argument("out_csv", type=Path, help="one-row increment table to write")
-    p.add_argument("out_families", type=Path, help="per cluster-family table to write")
-    p.add_argument("--settings", type=_json, default={},
-                   help="JSON keyword arguments of wetpath.energy_balance_angle")
-
-
-@subcommand("increment", _add_increment, "energy-balance angle of one increment and its families")
-def _cmd_increment(args) -> int:
-    from ._stages import increment_step
-
-    increment_step(args.measures, args.step_from, args.step_to, args.overlaps, args.events,
-                   args.out_csv, args.out_families, settings=args.settings)
+    if args.increment:
+        measures, step_from, step_to, out_csv, out_families = args.increment
+        increment_step(measures, step_from, step_to, args.out_overlaps, args.out_events,
+                       out_csv, out_families, settings=args.settings)
     return 0
 
 

@@ -35,32 +35,13 @@ def history_settings(wildcards):
                       sort_keys=True, default=str)
 
 
-rule label:
-    """Connected non-wetting clusters of one step (cluster label store)."""
-    input:
-        store=rules.ingest.output.store,
-    output:
-        store=directory(f"{RESULTS}/{{series}}/clusters/{{step}}.zarr"),
-    log:
-        f"{RESULTS}/{{series}}/logs/label/{{step}}.log",
-    params:
-        code=CODE,
-        connectivity=ANALYSIS["connectivity"],
-    threads: ANALYSIS["threads"]
-    resources:
-        mem_mb=scaled_mem_mb(800, 8),
-        runtime=scaled_runtime(5, 100),
-    shell:
-        "python -m wetpath label {input.store:q} {output.store:q}"
-        " --connectivity {params.connectivity} --threads {threads} > {log:q} 2>&1"
-
-
 rule measure:
-    """Volumes, areas, curvature, topology, contact line, topological and geometric angles."""
+    """Cluster labels, then volumes, areas, curvature, topology, contact line, topological and
+    geometric angles of one step."""
     input:
         store=rules.ingest.output.store,
-        clusters=rules.label.output.store,
     output:
+        clusters=directory(f"{RESULTS}/{{series}}/clusters/{{step}}.zarr"),
         state=f"{RESULTS}/{{series}}/measures/{{step}}.csv",
         clusters=f"{RESULTS}/{{series}}/measures/{{step}}_clusters.csv",
         blocks=f"{RESULTS}/{{series}}/measures/{{step}}_blocks.csv",
@@ -77,57 +58,40 @@ rule measure:
         mem_mb=scaled_mem_mb(1500, 40),
         runtime=scaled_runtime(10, 5),
     shell:
-        "python -m wetpath measure {input.store:q} {input.clusters:q} {params.folder:q}"
+        "python -m wetpath measure {input.store:q} {output.clusters:q} {params.folder:q} --label"
         " --step {wildcards.step:q} --settings {params.settings:q} --threads {threads}"
         " > {log:q} 2>&1"
 
 
 rule track:
-    """Overlaps and displacement events between the clusters of two successive steps."""
+    """Overlaps and displacement events between the clusters of two successive steps, and the
+    energy-balance angle of the increment (field of view and per cluster family)."""
     input:
         a=f"{RESULTS}/{{series}}/clusters/{{a}}.zarr",
         b=f"{RESULTS}/{{series}}/clusters/{{b}}.zarr",
+        before=f"{RESULTS}/{{series}}/measures/{{a}}.csv",
+        after=f"{RESULTS}/{{series}}/measures/{{b}}.csv",
     output:
         overlaps=f"{RESULTS}/{{series}}/tracks/{{a}}/{{b}}.csv",
         events=f"{RESULTS}/{{series}}/events/{{a}}/{{b}}.csv",
+        table=f"{RESULTS}/{{series}}/increments/{{a}}/{{b}}.csv",
+        families=f"{RESULTS}/{{series}}/families/{{a}}/{{b}}.csv",
     log:
         f"{RESULTS}/{{series}}/logs/track/{{a}}/{{b}}.log",
     params:
         code=CODE,
         voxel=lambda wc: voxel_triple(SERIES[wc.series]["voxel_size_um"])[0],
+        folder=lambda wc: f"{RESULTS}/{wc.series}/measures",
+        settings=ENERGY_SETTINGS,
     threads: ANALYSIS["threads"]
     resources:
         mem_mb=scaled_mem_mb(800, 4),
         runtime=scaled_runtime(5, 200),
     shell:
         "python -m wetpath track {input.a:q} {input.b:q} {output.overlaps:q} {output.events:q}"
-        " --voxel-size-um {params.voxel} --threads {threads} > {log:q} 2>&1"
-
-
-rule increment:
-    """Energy-balance angle of one increment, for the field of view and per cluster family."""
-    input:
-        before=f"{RESULTS}/{{series}}/measures/{{a}}.csv",
-        after=f"{RESULTS}/{{series}}/measures/{{b}}.csv",
-        overlaps=rules.track.output.overlaps,
-        events=rules.track.output.events,
-    output:
-        table=f"{RESULTS}/{{series}}/increments/{{a}}/{{b}}.csv",
-        families=f"{RESULTS}/{{series}}/families/{{a}}/{{b}}.csv",
-    log:
-        f"{RESULTS}/{{series}}/logs/increment/{{a}}/{{b}}.log",
-    params:
-        code=CODE,
-        folder=lambda wc: f"{RESULTS}/{wc.series}/measures",
-        settings=ENERGY_SETTINGS,
-    threads: 1
-    resources:
-        mem_mb=scaled_mem_mb(500, 4),
-        runtime=scaled_runtime(2, 100),
-    shell:
-        "python -m wetpath increment {params.folder:q} {wildcards.a:q} {wildcards.b:q}"
-        " {input.overlaps:q} {input.events:q} {output.table:q} {output.families:q}"
-        " --settings {params.settings:q} > {log:q} 2>&1"
+        " --voxel-size-um {params.voxel} --threads {threads} --settings {params.settings:q}"
+        " --increment {params.folder:q} {wildcards.a:q} {wildcards.b:q} {output.table:q}"
+        " {output.families:q} > {log:q} 2>&1"
 
 
 rule increments:
