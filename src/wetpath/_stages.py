@@ -18,7 +18,7 @@ import pandas as pd
 from ._atomic import atomic_directory, atomic_write_table
 from ._errors import WetpathError
 
-__all__ = ["label_step", "measure_step", "track_step", "increment_step", "collect_increments",
+__all__ = ["label_step", "measure_step", "track_step", "increment_step", "collect_angles",
            "history_series", "measure_paths"]
 
 # state keys that are tables, not numbers
@@ -110,6 +110,7 @@ def measure_step(store: str | os.PathLike, clusters_store: str | os.PathLike,
                              connectivity=connectivity, threads=threads)
     state = state_from_clusters(lattice, table)
     topo = topological_from_clusters(table)
+    topo["topo_flag"] = topo.pop("flag")
     row = {"step": step, "voxel_size_um": h, **_scalars(state), **_scalars(topo)}
     paths = measure_paths(out_folder, step)
     per_cluster = topo["clusters"] if len(topo["clusters"]) else table
@@ -202,29 +203,66 @@ def increment_step(measures: str | os.PathLike, step_from: str, step_to: str,
     return row
 
 
-def collect_increments(states_csv: str | os.PathLike, increment_csvs: Sequence,
-                       out_csv: str | os.PathLike, *, overlap_csvs: Sequence = (),
-                       lineages_csv: str | os.PathLike | None = None) -> pd.DataFrame:
-    """Concatenate per-increment rows in time order (``time_s`` of the later step) and, given the
-    overlap tables in order, write the lineages of all clusters across the series."""
+ANGLE_STATE_COLUMNS = (
+    "step", "time_s", "saturation_w", "n_clusters", "clusters_used", "theta_topo_deg",
+    "theta_topo_median_deg", "theta_topo_lo_deg", "theta_topo_hi_deg", "theta_topo_corrected_deg",
+    "topo_flag", "theta_geom_median_deg", "theta_geom_q25_deg", "theta_geom_q75_deg",
+    "theta_geom_mean_deg", "theta_geom_sem_deg", "theta_geom_count")
+ANGLE_CLUSTER_COLUMNS = (
+    "cluster", "voxels", "volume", "touches_border", "resolved", "used", "euler_n",
+    "contact_loops", "gauss_nw", "deficit", "curvature_nw", "theta_topo_deg",
+    "theta_topo_corrected_deg", "theta_geom_count", "theta_geom_median_deg", "theta_geom_q25_deg",
+    "theta_geom_q75_deg")
+
+
+def collect_angles(states_csv: str | os.PathLike, out_folder: str | os.PathLike, *,
+                   increment_csvs: Sequence = (), family_csvs: Sequence = (),
+                   cluster_csvs: Sequence = (), overlap_csvs: Sequence = ()) -> dict[str, Path]:
+    """The per-series angle tables.
+
+    Writes into ``out_folder`` (``results/<series>/angles``): ``states.csv`` (per state: the
+    topological and geometric angles), ``increments.csv`` (per increment, in time order, with the
+    ``time_s`` of the later step: energy-balance angle, flags, event counts), ``families.csv``
+    (per tracked cluster family and increment), ``clusters.csv`` (per cluster and state) and,
+    given the overlap tables in time order, ``lineages.csv`` (every cluster of every step).
+    ``cluster_csvs`` are the measure stage's ``<step>_clusters.csv`` in the order of the steps.
+    """
     from ._tracking import lineages
 
+    out = Path(out_folder)
     states = pd.read_csv(states_csv, dtype={"step": str})
-    rows = [pd.read_csv(f, dtype={"step_from": str, "step_to": str}) for f in increment_csvs]
-    table = pd.concat(rows, ignore_index=True) if rows else pd.DataFrame(
-        columns=["step_from", "step_to"])
+    steps = list(states["step"])
+    order = {s: i for i, s in enumerate(steps)}
     times = dict(zip(states["step"], states["time_s"], strict=True))
-    table.insert(2, "time_s", table["step_to"].map(times))
-    order = {s: i for i, s in enumerate(states["step"])}
-    table = table.sort_values("step_to", key=lambda s: s.map(order)).reset_index(drop=True)
-    if lineages_csv is not None:
-        tables = [pd.read_csv(f) for f in overlap_csvs]
-        lin = lineages(tables)
-        steps = list(states["step"])
-        lin.insert(0, "step_name", [steps[i] for i in lin["step"]])
-        atomic_write_table(lin, lineages_csv)
-    atomic_write_table(table, out_csv)
-    return table
+
+    def concat(files, columns):
+        parts = [pd.read_csv(f, dtype={"step_from": str, "step_to": str}) for f in files]
+        parts = [p for p in parts if len(p)]
+        return pd.concat(parts, ignore_index=True) if parts else pd.DataFrame(columns=columns)
+
+    increments = concat(increment_csvs, ["step_from", "step_to"])
+    increments.insert(2, "time_s", increments["step_to"].map(times))
+    increments = increments.sort_values("step_to", key=lambda c: c.map(order), kind="stable")
+    families = concat(family_csvs, ["step_from", "step_to"])
+    clusters = []
+    for step, f in zip(steps, cluster_csvs, strict=True):
+        table = pd.read_csv(f)
+        table = table[[c for c in ANGLE_CLUSTER_COLUMNS if c in table.columns]]
+        table.insert(0, "step", step)
+        clusters.append(table)
+    paths = {"states": out / "states.csv", "increments": out / "increments.csv",
+             "families": out / "families.csv", "clusters": out / "clusters.csv",
+             "lineages": out / "lineages.csv"}
+    atomic_write_table(states[[c for c in ANGLE_STATE_COLUMNS if c in states.columns]],
+                       paths["states"])
+    atomic_write_table(increments.reset_index(drop=True), paths["increments"])
+    atomic_write_table(families, paths["families"])
+    atomic_write_table(pd.concat(clusters, ignore_index=True) if clusters else pd.DataFrame(
+        columns=["step", "cluster"]), paths["clusters"])
+    lin = lineages([pd.read_csv(f) for f in overlap_csvs])
+    lin.insert(0, "step_name", [steps[i] for i in lin["step"]])
+    atomic_write_table(lin, paths["lineages"])
+    return paths
 
 
 def history_series(states_csv: str | os.PathLike, increments_csv: str | os.PathLike,
@@ -233,7 +271,7 @@ def history_series(states_csv: str | os.PathLike, increments_csv: str | os.PathL
                    static_tol: float = 0.005, title: str | None = None) -> Path:
     """Saturation-path history, branch summary, figures and the HTML report of one series."""
     from ._history import branch_summary, build_history, write_history_tables
-    from ._plots import mid_plane_slices, plot_history
+    from ._plots import mid_plane_slices
     from ._report import flag_warnings, write_report
     from ._store import open_step
 

@@ -295,21 +295,27 @@ def _cmd_track(args) -> int:
     return 0
 
 
-def _add_increments(p):
+def _add_angles(p):
     p.add_argument("states", type=Path, help="the series' states.csv")
-    p.add_argument("out_csv", type=Path, help="increments table to write")
-    p.add_argument("--tables", nargs="*", type=Path, default=[], help="per-increment tables")
+    p.add_argument("out_folder", type=Path, help="folder of the angle tables to write")
+    p.add_argument("--increments", nargs="*", type=Path, default=[],
+                   help="per-increment tables (track --increment)")
+    p.add_argument("--families", nargs="*", type=Path, default=[],
+                   help="per-family tables (track --increment)")
+    p.add_argument("--clusters", nargs="*", type=Path, default=[],
+                   help="per-cluster measure tables, in step order")
     p.add_argument("--overlaps", nargs="*", type=Path, default=[],
                    help="overlap tables in time order (for the lineages)")
-    p.add_argument("--lineages", type=Path, help="lineage table to write")
 
 
-@subcommand("increments", _add_increments, "join the per-increment tables of a series")
-def _cmd_increments(args) -> int:
-    from ._stages import collect_increments
+@subcommand("angles", _add_angles,
+            "per-series angle tables: states, increments, families, clusters, lineages")
+def _cmd_angles(args) -> int:
+    from ._stages import collect_angles
 
-    collect_increments(args.states, args.tables, args.out_csv, overlap_csvs=args.overlaps,
-                       lineages_csv=args.lineages)
+    collect_angles(args.states, args.out_folder, increment_csvs=args.increments,
+                   family_csvs=args.families, cluster_csvs=args.clusters,
+                   overlap_csvs=args.overlaps)
     return 0
 
 

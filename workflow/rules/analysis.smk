@@ -25,6 +25,16 @@ def overlap_tables(wildcards):
             for a, b in increments_of(wildcards.series)]
 
 
+def family_tables(wildcards):
+    return [f"{RESULTS}/{wildcards.series}/families/{a}/{b}.csv"
+            for a, b in increments_of(wildcards.series)]
+
+
+def cluster_tables(wildcards):
+    return [f"{RESULTS}/{wildcards.series}/measures/{s}_clusters.csv"
+            for s in step_names(wildcards.series)]
+
+
 def step_stores(wildcards):
     return [f"{RESULTS}/{wildcards.series}/steps/{s}.zarr" for s in step_names(wildcards.series)]
 
@@ -43,7 +53,7 @@ rule measure:
     output:
         clusters=directory(f"{RESULTS}/{{series}}/clusters/{{step}}.zarr"),
         state=f"{RESULTS}/{{series}}/measures/{{step}}.csv",
-        clusters=f"{RESULTS}/{{series}}/measures/{{step}}_clusters.csv",
+        cluster_table=f"{RESULTS}/{{series}}/measures/{{step}}_clusters.csv",
         blocks=f"{RESULTS}/{{series}}/measures/{{step}}_blocks.csv",
         perturbed=f"{RESULTS}/{{series}}/measures/{{step}}_perturbed.csv",
         points=f"{RESULTS}/{{series}}/measures/{{step}}_points.csv",
@@ -94,34 +104,40 @@ rule track:
         " {output.families:q} > {log:q} 2>&1"
 
 
-rule increments:
-    """All increments of a series in time order, and the lineages of its clusters."""
+rule angles:
+    """Per-series angle tables (states, increments, families, clusters) and cluster lineages."""
     input:
         states=f"{RESULTS}/{{series}}/states.csv",
-        tables=increment_tables,
+        increments=increment_tables,
+        families=family_tables,
+        clusters=cluster_tables,
         overlaps=overlap_tables,
     output:
-        table=f"{RESULTS}/{{series}}/angles/increments.csv",
-        lineages=f"{RESULTS}/{{series}}/tracks/lineages.csv",
+        states=f"{RESULTS}/{{series}}/angles/states.csv",
+        increments=f"{RESULTS}/{{series}}/angles/increments.csv",
+        families=f"{RESULTS}/{{series}}/angles/families.csv",
+        clusters=f"{RESULTS}/{{series}}/angles/clusters.csv",
+        lineages=f"{RESULTS}/{{series}}/angles/lineages.csv",
     log:
-        f"{RESULTS}/{{series}}/logs/increments.log",
+        f"{RESULTS}/{{series}}/logs/angles.log",
     params:
         code=CODE,
+        folder=lambda wc: f"{RESULTS}/{wc.series}/angles",
     threads: 1
     resources:
         mem_mb=scaled_mem_mb(500, 4),
         runtime=scaled_runtime(2, 100),
     shell:
-        "python -m wetpath increments {input.states:q} {output.table:q}"
-        " --tables {input.tables:q} --overlaps {input.overlaps:q}"
-        " --lineages {output.lineages:q} > {log:q} 2>&1"
+        "python -m wetpath angles {input.states:q} {params.folder:q}"
+        " --increments {input.increments:q} --families {input.families:q}"
+        " --clusters {input.clusters:q} --overlaps {input.overlaps:q} > {log:q} 2>&1"
 
 
 rule history:
     """Saturation-path history, branch summary, figures and the HTML report of a series."""
     input:
         states=f"{RESULTS}/{{series}}/states.csv",
-        increments=rules.increments.output.table,
+        increments=rules.angles.output.increments,
         stores=step_stores,
     output:
         history=f"{RESULTS}/{{series}}/history.csv",
