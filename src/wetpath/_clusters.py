@@ -22,6 +22,8 @@ Raster-scan labelling with union–find and merging of block-wise labels: K. Wu,
 
 from __future__ import annotations
 
+import threading
+
 import numpy as np
 import pandas as pd
 from numba import njit
@@ -38,7 +40,6 @@ from ._lattice import (
     _lut,
     _Source,
     euler_lut,
-    iter_slabs,
     resolve_threads,
     run_parallel,
 )
@@ -337,24 +338,23 @@ def _pair_table() -> tuple[np.ndarray, ...]:
 
 
 @njit(cache=True, nogil=True)
-def _cluster_cubes(codes, clus, zbase, cube, single, e8, nmask, ps, pt, pc, pw, corners,
-                   acc, bbmin, bbmax):
+def _cluster_cubes(codes, clus, nk, zbase, j0, j1, cube, single, e8, nmask, ps, pt, pc, pw,
+                   corners, acc, bbmin, bbmax):
     """Accumulate per-cluster sums over the cubes of one padded slab.
 
-    ``codes``/``clus`` have shape (T + 1, ny + 2, nx + 2): padded index (k, j, i) is voxel
-    (zbase − 1 + k, j − 1, i − 1). ``cube[idx]`` holds the ×4 n–w and n–s pair counts per
+    ``codes``/``clus`` have shape (≥ nk + 1, ny + 2, nx + 2): padded index (k, j, i) is voxel
+    (zbase − 1 + k, j − 1, i − 1); cubes with origin k ∈ [0, nk), j ∈ [j0, j1) are
+    counted. ``cube[idx]`` holds the ×4 n–w and n–s pair counts per
     direction class, 8·χ of the n corners and "holds an excluded voxel" of configuration idx.
     ``single``: a cube holds at most one cluster (26-connectivity), so the label of its first n
     corner stands for all. Returns the number of n voxels without a cluster id.
     """
-    nk = codes.shape[0] - 1
-    nj = codes.shape[1] - 1
     ni = codes.shape[2] - 1
     bad = 0
     labs = np.zeros(8, np.int64)
     cods = np.zeros(8, np.int64)
     for k in range(nk):
-        for j in range(nj):
+        for j in range(j0, j1):
             r0 = codes[k, j]
             r1 = codes[k, j + 1]
             r2 = codes[k + 1, j]
@@ -519,30 +519,58 @@ def cluster_lattice_measures(labels, cluster_labels, voxel_size: float = 1.0, *,
         axis=1).astype(np.int16))
     ps, pt, pc, pw = _pair_table()
 
-    def check(p):
-        _check_codes(p)
-        return p.astype(np.uint8, copy=False)
-
-    slabs = zip(iter_slabs(src, depth, convert=check), iter_slabs(csrc, depth), strict=True)
     nz, ny, nx = src.shape
-    padded: list[tuple[np.ndarray, np.ndarray] | None] = [None] * nw
+    # Two padded slab buffers, filled alternately by the producer while the workers read the
+    # other one; each slab is cut into ``nw`` row ranges, one item per range. A buffer is refilled
+    # only when no item of its previous slab is pending. Zero borders in y and x stay zero: only
+    # interiors are written.
+    bufs = [(np.zeros((depth + 1, ny + 2, nx + 2), np.uint8),
+             np.zeros((depth + 1, ny + 2, nx + 2), csrc.dtype)) for _ in range(2)]
+    cuts = np.linspace(0, ny + 1, nw + 1).round().astype(int)
+    pending = [0, 0]
+    cond = threading.Condition()
+
+    def items():
+        for s, a in enumerate(range(0, nz + 1, depth)):
+            b = min(a + depth, nz + 1)
+            with cond:
+                cond.wait_for(lambda i=s % 2: pending[i] == 0)
+                pending[s % 2] = nw
+            codes, clus = bufs[s % 2]
+            if a == 0:
+                codes[0] = 0
+                clus[0] = 0
+            else:                                # halo plane a − 1: last plane of the last slab
+                prev_codes, prev_clus = bufs[(s - 1) % 2]
+                codes[0] = prev_codes[depth]
+                clus[0] = prev_clus[depth]
+            hi = min(b, nz)
+            if a < hi:
+                fresh = src.read(a, hi)
+                _check_codes(fresh)
+                codes[1:1 + hi - a, 1:-1, 1:-1] = fresh
+                clus[1:1 + hi - a, 1:-1, 1:-1] = csrc.read(a, hi)
+            if b > nz:
+                codes[1 + nz - a] = 0
+                clus[1 + nz - a] = 0
+            for p in range(nw):
+                yield s % 2, a, b - a, cuts[p], cuts[p + 1]
 
     def work(w, item):
-        (a, _b, codes_), (_, _, clus_) = item
-        if padded[w] is None:      # zero borders in y and x stay zero: only interiors are written
-            padded[w] = (np.zeros((depth + 1, ny + 2, nx + 2), np.uint8),
-                         np.zeros((depth + 1, ny + 2, nx + 2), csrc.dtype))
-        t = codes_.shape[0]
-        codes, clus = padded[w][0][:t], padded[w][1][:t]
-        codes[:, 1:-1, 1:-1] = codes_
-        clus[:, 1:-1, 1:-1] = clus_
-        bad = _cluster_cubes(codes, clus, a, cube, connectivity == 26, e8, nmask, ps, pt, pc, pw,
-                             CUBE_CORNERS, accs[w], bbmins[w], bbmaxs[w])
+        which, a, nk, j0, j1 = item
+        codes, clus = bufs[which]
+        try:
+            bad = _cluster_cubes(codes, clus, nk, a, j0, j1, cube, connectivity == 26, e8, nmask,
+                                 ps, pt, pc, pw, CUBE_CORNERS, accs[w], bbmins[w], bbmaxs[w])
+        finally:
+            with cond:
+                pending[which] -= 1
+                cond.notify_all()
         if bad:
             raise WetpathError(f"{bad} non-wetting voxels have no cluster id in cluster_labels",
                                step="clusters")
 
-    run_parallel(slabs, work, threads)
+    run_parallel(items(), work, threads, max_pending=nw)
     acc = np.sum(accs, axis=0)
     acc[:, 11] = np.max([a[:, 11] for a in accs], axis=0)
     bbmin = np.min(bbmins, axis=0)
