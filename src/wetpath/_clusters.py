@@ -314,7 +314,10 @@ def label_clusters(labels, *, connectivity: int = 26, chunks=None, threads: int 
         else:
             prov, _, _ = label_slab(w, a)
             _remap(prov, table.astype(prov.dtype))
-            out[a:a + prov.shape[0]] = prov
+            # write chunk by chunk in y: bounded encoder memory
+            step = out.chunks[1]
+            for y0 in range(0, ny, step):
+                out[a:a + prov.shape[0], y0:y0 + step] = prov[:, y0:y0 + step]
 
     run_parallel(iter(range(len(starts))), second_pass, threads)
     return out, int(ncomp)
