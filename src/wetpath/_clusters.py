@@ -28,8 +28,6 @@ import numpy as np
 import pandas as pd
 from numba import njit
 from scipy import ndimage
-from scipy.sparse import coo_matrix
-from scipy.sparse.csgraph import connected_components
 
 from ._errors import WetpathError
 from ._lattice import (
@@ -155,6 +153,14 @@ def _compact(parent, first, n, base):
 
 
 @njit(cache=True, nogil=True)
+def _roots(parent):
+    out = np.empty(parent.size, np.int64)
+    for i in range(parent.size):
+        out[i] = _find(parent, i)
+    return out
+
+
+@njit(cache=True, nogil=True)
 def _remap(labels, table):
     """In place: label l > 0 becomes table[l]."""
     flat = labels.ravel()
@@ -183,22 +189,29 @@ def _check_codes(planes: np.ndarray) -> None:
         raise WetpathError("labels must hold canonical phase codes 0..3", step="clusters")
 
 
-def _face_pairs(lower: np.ndarray, upper: np.ndarray, connectivity: int) -> np.ndarray:
-    """(k, 2) provisional id pairs adjacent across a z face (lower plane z−1, upper plane z);
-    duplicates are left in (the sparse graph sums them)."""
+@njit(cache=True, nogil=True)
+def _unite_faces(lower, upper, off_lower, off_upper, parent, firsts, reach):
+    """Unite pieces adjacent across a z face: voxel (y, x) of the lower plane (local ids, global
+    piece id = off_lower + id) with (y + dy, x + dx) of the upper plane, |dy|, |dx| ≤ reach.
+    The root of a set is the piece whose first voxel comes first in C order."""
     ny, nx = lower.shape
-    steps = (0,) if connectivity == 6 else (-1, 0, 1)
-    offsets = [(dy, dx) for dy in steps for dx in steps]
-    pairs = []
-    for dy, dx in offsets:
-        lo = lower[max(0, -dy):ny - max(0, dy), max(0, -dx):nx - max(0, dx)]
-        up = upper[max(0, dy):ny - max(0, -dy), max(0, dx):nx - max(0, -dx)]
-        both = (lo > 0) & (up > 0)
-        if both.any():
-            pairs.append(np.stack([lo[both], up[both]], axis=1))
-    if not pairs:
-        return np.zeros((0, 2), np.int64)
-    return np.concatenate(pairs).astype(np.int64)
+    for y in range(ny):
+        for x in range(nx):
+            a = lower[y, x]
+            if a == 0:
+                continue
+            for yy in range(max(y - reach, 0), min(y + reach + 1, ny)):
+                for xx in range(max(x - reach, 0), min(x + reach + 1, nx)):
+                    b = upper[yy, xx]
+                    if b == 0:
+                        continue
+                    ra = _find(parent, off_lower + a)
+                    rb = _find(parent, off_upper + b)
+                    if ra != rb:
+                        if firsts[ra] < firsts[rb]:
+                            parent[rb] = ra
+                        else:
+                            parent[ra] = rb
 
 
 def label_clusters(labels, *, connectivity: int = 26, chunks=None, threads: int | None = None,
@@ -276,28 +289,26 @@ def label_clusters(labels, *, connectivity: int = 26, chunks=None, threads: int 
 
     def first_pass(w, a):
         prov, local, first = label_slab(w, a)
-        return local, first, local[prov[0]], local[prov[-1]]
+        faces = local.astype(np.int32)[prov[0]], local.astype(np.int32)[prov[-1]]
+        return local, first, *faces
 
     res = run_parallel(iter(starts), first_pass, threads)
     counts = np.array([r[1].size for r in res], np.int64)
     offsets = np.concatenate([[0], np.cumsum(counts)])
     total = int(offsets[-1])
-    firsts = np.concatenate([r[1] for r in res]) if total else np.zeros(0, np.int64)
-    # union of pieces across slab faces (piece ids: offset + local id, 1-based)
-    edges = [np.zeros((0, 2), np.int64)]
+    # union–find over pieces (id = slab offset + local id, 1-based) across slab faces
+    firsts = np.concatenate([[-1]] + [r[1] for r in res]).astype(np.int64)
+    parent = np.arange(total + 1, dtype=np.int64)
     for s in range(1, len(starts)):
-        lower = np.where(res[s - 1][3] > 0, res[s - 1][3] + offsets[s - 1], 0)
-        upper = np.where(res[s][2] > 0, res[s][2] + offsets[s], 0)
-        edges.append(_face_pairs(lower, upper, connectivity))
-    e = np.concatenate(edges) - 1
-    graph = coo_matrix((np.ones(len(e), np.int8), (e[:, 0], e[:, 1])), shape=(total, total))
-    ncomp, comp = connected_components(graph, directed=False) if total else (0, np.zeros(0, int))
-    comp_first = np.full(ncomp, np.iinfo(np.int64).max, np.int64)
-    np.minimum.at(comp_first, comp, firsts)
-    rank = np.empty(ncomp, np.int64)
-    rank[np.argsort(comp_first, kind="stable")] = np.arange(1, ncomp + 1)
-    lut = np.zeros(total + 1, dtype)
-    lut[1:] = rank[comp]
+        _unite_faces(res[s - 1][3], res[s][2], offsets[s - 1], offsets[s], parent, firsts,
+                     0 if connectivity == 6 else 1)
+    roots = _roots(parent)
+    is_root = roots[1:] == np.arange(1, total + 1)
+    ncomp = int(is_root.sum())
+    rank = np.zeros(total + 1, np.int64)     # roots ordered by first voxel: final ids 1..n
+    root_ids = np.flatnonzero(is_root) + 1
+    rank[root_ids[np.argsort(firsts[root_ids], kind="stable")]] = np.arange(1, ncomp + 1)
+    lut = rank[roots].astype(dtype)
 
     def second_pass(w, s):
         a = starts[s]
