@@ -466,8 +466,9 @@ def measures_from_histogram(hist: np.ndarray, voxel_size: float = 1.0, *,
     h = _check_voxel_size(voxel_size)
     hist = np.asarray(hist, np.int64)
     counts = hist @ _lut("block")
-    e = _lut("e26" if connectivity == 26 else "e6") if connectivity in (6, 26) else euler_lut(
-        connectivity)
+    if connectivity not in (6, 26):
+        raise WetpathError(f"connectivity must be 6 or 26, got {connectivity}", step="lattice")
+    e = _lut(f"e{connectivity}")
     masks = _lut("masks")
     euler = {c: int(hist @ e[masks[:, c]]) // 8 for c in (1, 2, 3)}
     return _assemble(counts[:4], counts[4:13], h) | {
