@@ -144,3 +144,9 @@ def test_int64_output_views_and_stored_inputs(tmp_path, medium):
                            dtype="uint8")
     zm[:] = medium
     assert cluster_lattice_measures(zm, zc).equals(cluster_lattice_measures(medium, ref))
+
+
+def test_cluster_ids_out_of_range():
+    m = np.full((4, 4, 4), 3, np.uint8)
+    with pytest.raises(WetpathError, match="cluster ids"):
+        cluster_lattice_measures(m, np.full((4, 4, 4), 9, np.int32), n=2)

@@ -563,7 +563,10 @@ def cluster_lattice_measures(labels, cluster_labels, voxel_size: float = 1.0, *,
                 fresh = src.read(a, hi)
                 _check_codes(fresh)
                 codes[1:1 + hi - a, 1:-1, 1:-1] = fresh
-                clus[1:1 + hi - a, 1:-1, 1:-1] = csrc.read(a, hi)
+                ids = csrc.read(a, hi)
+                if ids.size and (ids.max() > n or (ids.dtype.kind == "i" and ids.min() < 0)):
+                    raise WetpathError(f"cluster ids must lie in 0..{n}", step="clusters")
+                clus[1:1 + hi - a, 1:-1, 1:-1] = ids
             if b > nz:
                 codes[1 + nz - a] = 0
                 clus[1 + nz - a] = 0

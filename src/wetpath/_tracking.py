@@ -167,8 +167,9 @@ def overlap_table(clusters_a, clusters_b, *, shift=None, chunks=None,
         z1, y1 = min(z0 + depth, hi[0]), min(y0 + band, hi[1])
         a = _window(sa, (z0, y0, lo[2]), (z1, y1, hi[2]))
         b = _window(sb, (z0 + dz, y0 + dy, lo[2] + dx), (z1 + dz, y1 + dy, hi[2] + dx))
-        if (a.size and a.min() < 0) or (b.size and b.min() < 0):
-            raise WetpathError("cluster ids must be non-negative", step="track")
+        for x in (a, b):
+            if x.size and ((x.dtype.kind == "i" and x.min() < 0) or x.max() >= 2**31):
+                raise WetpathError("cluster ids must lie in 0..2³¹ − 1", step="track")
         t = tables[w]
         t[0], t[1], t[2] = _overlap_pass(a, b, t[0], t[1], t[2])
 
