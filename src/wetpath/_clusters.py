@@ -541,6 +541,7 @@ def cluster_lattice_measures(labels, cluster_labels, voxel_size: float = 1.0, *,
     bufs = [(np.zeros((depth + 1, ny + 2, nx + 2), np.uint8),
              np.zeros((depth + 1, ny + 2, nx + 2), csrc.dtype)) for _ in range(2)]
     cuts = np.linspace(0, ny + 1, nw + 1).round().astype(int)
+    band = (csrc.chunk_shape() or (0, ny))[1]
     pending = [0, 0]
     cond = threading.Condition()
 
@@ -559,14 +560,15 @@ def cluster_lattice_measures(labels, cluster_labels, voxel_size: float = 1.0, *,
                 codes[0] = prev_codes[depth]
                 clus[0] = prev_clus[depth]
             hi = min(b, nz)
-            if a < hi:
-                fresh = src.read(a, hi)
+            for y0 in range(0, ny, band) if a < hi else ():    # chunk rows: bounded memory
+                y1 = min(y0 + band, ny)
+                fresh = src.region((a, y0, 0), (hi, y1, nx))
                 _check_codes(fresh)
-                codes[1:1 + hi - a, 1:-1, 1:-1] = fresh
-                ids = csrc.read(a, hi)
+                codes[1:1 + hi - a, 1 + y0:1 + y1, 1:-1] = fresh
+                ids = csrc.region((a, y0, 0), (hi, y1, nx))
                 if ids.size and (ids.max() > n or (ids.dtype.kind == "i" and ids.min() < 0)):
                     raise WetpathError(f"cluster ids must lie in 0..{n}", step="clusters")
-                clus[1:1 + hi - a, 1:-1, 1:-1] = ids
+                clus[1:1 + hi - a, 1 + y0:1 + y1, 1:-1] = ids
             if b > nz:
                 codes[1 + nz - a] = 0
                 clus[1 + nz - a] = 0
