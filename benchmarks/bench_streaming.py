@@ -70,10 +70,18 @@ def make_inputs(size: int, cache: Path, as_zarr: bool) -> dict[str, Path]:
             for z0 in range(0, size, 64):
                 z[z0:z0 + 64] = base[np.ix_(idx[z0:z0 + 64], idx, idx)]
             out = zarr.create_array(cache / f"{name}_{size}_clusters.zarr", shape=(size,) * 3,
-                                    chunks=(64, 256, 256), dtype="int32", overwrite=True)
+                                    chunks=(64, 256, 256), dtype="int32", overwrite=True,
+                                    compressors=_label_codec())
             label_clusters(z, out=out)
         paths[name] = p
     return paths
+
+
+def _label_codec():
+    """Blosc lz4 with byte shuffle for int32 cluster labels: fast to write, compact."""
+    from zarr.codecs import BloscCodec
+
+    return BloscCodec(cname="lz4", clevel=5, shuffle="shuffle")
 
 
 def _open(path: Path):
@@ -121,7 +129,7 @@ def run_stage(stage: str, size: int, cache: Path, kind: str, threads: int, repea
                 import zarr
 
                 out = zarr.create_array(tmp / "out.zarr", shape=a.shape, chunks=(64, 256, 256),
-                                        dtype="int32", overwrite=True)
+                                        dtype="int32", overwrite=True, compressors=_label_codec())
             label_clusters(a, threads=threads, out=out)
         elif stage == "cluster_measures":
             cluster_lattice_measures(a, ca, threads=threads)

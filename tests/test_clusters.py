@@ -125,3 +125,28 @@ def test_errors():
         cluster_lattice_measures(m, np.zeros((4, 4, 5), np.int32))
     with pytest.raises(WetpathError, match="canonical"):
         label_clusters(np.full((4, 4, 4), 9, np.uint8))
+
+
+def test_int64_output_views_and_stored_inputs(tmp_path, medium):
+    zarr = pytest.importorskip("zarr")
+    ref, n_ref = label_clusters(medium)
+    out = np.full(medium.shape, -5, np.int64)
+    lab, n = label_clusters(medium, out=out, chunks=40)
+    assert lab is out and n == n_ref and np.array_equal(out, ref)
+    # a non-contiguous view (flipped) gives the labels of the flipped copy
+    flipped, n_flip = label_clusters(medium[:, ::-1])
+    assert np.array_equal(flipped, label_clusters(medium[:, ::-1].copy())[0]) and n_flip == n_ref
+    # per-cluster measures read from zarr stores equal the in-memory ones
+    zc = zarr.create_array(tmp_path / "c.zarr", shape=medium.shape, chunks=(30, 70, 80),
+                           dtype="int32")
+    zc[:] = ref
+    zm = zarr.create_array(tmp_path / "m.zarr", shape=medium.shape, chunks=(30, 70, 80),
+                           dtype="uint8")
+    zm[:] = medium
+    assert cluster_lattice_measures(zm, zc).equals(cluster_lattice_measures(medium, ref))
+
+
+def test_cluster_ids_out_of_range():
+    m = np.full((4, 4, 4), 3, np.uint8)
+    with pytest.raises(WetpathError, match="cluster ids"):
+        cluster_lattice_measures(m, np.full((4, 4, 4), 9, np.int32), n=2)

@@ -159,3 +159,10 @@ def test_codes_and_errors():
     with pytest.raises(WetpathError, match="does not start"):
         lineages([overlap_table_reference(label_clusters(a)[0], label_clusters(b)[0]),
                   overlap_table_reference(label_clusters(a)[0], label_clusters(b)[0])])
+
+
+def test_cluster_label_inputs():
+    a, b = _scene(**TWO), _scene(**DUMBBELL)
+    la, _ = label_clusters(a)
+    lb, _ = label_clusters(b)
+    assert track_clusters(la, lb, clusters=True).equals(track_clusters(a, b))

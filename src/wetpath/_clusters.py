@@ -22,12 +22,12 @@ Raster-scan labelling with union–find and merging of block-wise labels: K. Wu,
 
 from __future__ import annotations
 
+import threading
+
 import numpy as np
 import pandas as pd
 from numba import njit
 from scipy import ndimage
-from scipy.sparse import coo_matrix
-from scipy.sparse.csgraph import connected_components
 
 from ._errors import WetpathError
 from ._lattice import (
@@ -38,7 +38,6 @@ from ._lattice import (
     _lut,
     _Source,
     euler_lut,
-    iter_slabs,
     resolve_threads,
     run_parallel,
 )
@@ -154,6 +153,14 @@ def _compact(parent, first, n, base):
 
 
 @njit(cache=True, nogil=True)
+def _roots(parent):
+    out = np.empty(parent.size, np.int64)
+    for i in range(parent.size):
+        out[i] = _find(parent, i)
+    return out
+
+
+@njit(cache=True, nogil=True)
 def _remap(labels, table):
     """In place: label l > 0 becomes table[l]."""
     flat = labels.ravel()
@@ -182,22 +189,29 @@ def _check_codes(planes: np.ndarray) -> None:
         raise WetpathError("labels must hold canonical phase codes 0..3", step="clusters")
 
 
-def _face_pairs(lower: np.ndarray, upper: np.ndarray, connectivity: int) -> np.ndarray:
-    """(k, 2) provisional id pairs adjacent across a z face (lower plane z−1, upper plane z);
-    duplicates are left in (the sparse graph sums them)."""
+@njit(cache=True, nogil=True)
+def _unite_faces(lower, upper, off_lower, off_upper, parent, firsts, reach):
+    """Unite pieces adjacent across a z face: voxel (y, x) of the lower plane (local ids, global
+    piece id = off_lower + id) with (y + dy, x + dx) of the upper plane, |dy|, |dx| ≤ reach.
+    The root of a set is the piece whose first voxel comes first in C order."""
     ny, nx = lower.shape
-    steps = (0,) if connectivity == 6 else (-1, 0, 1)
-    offsets = [(dy, dx) for dy in steps for dx in steps]
-    pairs = []
-    for dy, dx in offsets:
-        lo = lower[max(0, -dy):ny - max(0, dy), max(0, -dx):nx - max(0, dx)]
-        up = upper[max(0, dy):ny - max(0, -dy), max(0, dx):nx - max(0, -dx)]
-        both = (lo > 0) & (up > 0)
-        if both.any():
-            pairs.append(np.stack([lo[both], up[both]], axis=1))
-    if not pairs:
-        return np.zeros((0, 2), np.int64)
-    return np.concatenate(pairs).astype(np.int64)
+    for y in range(ny):
+        for x in range(nx):
+            a = lower[y, x]
+            if a == 0:
+                continue
+            for yy in range(max(y - reach, 0), min(y + reach + 1, ny)):
+                for xx in range(max(x - reach, 0), min(x + reach + 1, nx)):
+                    b = upper[yy, xx]
+                    if b == 0:
+                        continue
+                    ra = _find(parent, off_lower + a)
+                    rb = _find(parent, off_upper + b)
+                    if ra != rb:
+                        if firsts[ra] < firsts[rb]:
+                            parent[rb] = ra
+                        else:
+                            parent[ra] = rb
 
 
 def label_clusters(labels, *, connectivity: int = 26, chunks=None, threads: int | None = None,
@@ -275,28 +289,26 @@ def label_clusters(labels, *, connectivity: int = 26, chunks=None, threads: int 
 
     def first_pass(w, a):
         prov, local, first = label_slab(w, a)
-        return local, first, local[prov[0]], local[prov[-1]]
+        faces = local.astype(np.int32)[prov[0]], local.astype(np.int32)[prov[-1]]
+        return local, first, *faces
 
     res = run_parallel(iter(starts), first_pass, threads)
     counts = np.array([r[1].size for r in res], np.int64)
     offsets = np.concatenate([[0], np.cumsum(counts)])
     total = int(offsets[-1])
-    firsts = np.concatenate([r[1] for r in res]) if total else np.zeros(0, np.int64)
-    # union of pieces across slab faces (piece ids: offset + local id, 1-based)
-    edges = [np.zeros((0, 2), np.int64)]
+    # union–find over pieces (id = slab offset + local id, 1-based) across slab faces
+    firsts = np.concatenate([[-1]] + [r[1] for r in res]).astype(np.int64)
+    parent = np.arange(total + 1, dtype=np.int64)
     for s in range(1, len(starts)):
-        lower = np.where(res[s - 1][3] > 0, res[s - 1][3] + offsets[s - 1], 0)
-        upper = np.where(res[s][2] > 0, res[s][2] + offsets[s], 0)
-        edges.append(_face_pairs(lower, upper, connectivity))
-    e = np.concatenate(edges) - 1
-    graph = coo_matrix((np.ones(len(e), np.int8), (e[:, 0], e[:, 1])), shape=(total, total))
-    ncomp, comp = connected_components(graph, directed=False) if total else (0, np.zeros(0, int))
-    comp_first = np.full(ncomp, np.iinfo(np.int64).max, np.int64)
-    np.minimum.at(comp_first, comp, firsts)
-    rank = np.empty(ncomp, np.int64)
-    rank[np.argsort(comp_first, kind="stable")] = np.arange(1, ncomp + 1)
-    lut = np.zeros(total + 1, dtype)
-    lut[1:] = rank[comp]
+        _unite_faces(res[s - 1][3], res[s][2], offsets[s - 1], offsets[s], parent, firsts,
+                     0 if connectivity == 6 else 1)
+    roots = _roots(parent)
+    is_root = roots[1:] == np.arange(1, total + 1)
+    ncomp = int(is_root.sum())
+    rank = np.zeros(total + 1, np.int64)     # roots ordered by first voxel: final ids 1..n
+    root_ids = np.flatnonzero(is_root) + 1
+    rank[root_ids[np.argsort(firsts[root_ids], kind="stable")]] = np.arange(1, ncomp + 1)
+    lut = rank[roots].astype(dtype)
 
     def second_pass(w, s):
         a = starts[s]
@@ -313,7 +325,10 @@ def label_clusters(labels, *, connectivity: int = 26, chunks=None, threads: int 
         else:
             prov, _, _ = label_slab(w, a)
             _remap(prov, table.astype(prov.dtype))
-            out[a:a + prov.shape[0]] = prov
+            # write chunk by chunk in y: bounded encoder memory
+            step = out.chunks[1]
+            for y0 in range(0, ny, step):
+                out[a:a + prov.shape[0], y0:y0 + step] = prov[:, y0:y0 + step]
 
     run_parallel(iter(range(len(starts))), second_pass, threads)
     return out, int(ncomp)
@@ -337,24 +352,23 @@ def _pair_table() -> tuple[np.ndarray, ...]:
 
 
 @njit(cache=True, nogil=True)
-def _cluster_cubes(codes, clus, zbase, cube, single, e8, nmask, ps, pt, pc, pw, corners,
-                   acc, bbmin, bbmax):
+def _cluster_cubes(codes, clus, nk, zbase, j0, j1, cube, single, e8, nmask, ps, pt, pc, pw,
+                   corners, acc, bbmin, bbmax):
     """Accumulate per-cluster sums over the cubes of one padded slab.
 
-    ``codes``/``clus`` have shape (T + 1, ny + 2, nx + 2): padded index (k, j, i) is voxel
-    (zbase − 1 + k, j − 1, i − 1). ``cube[idx]`` holds the ×4 n–w and n–s pair counts per
+    ``codes``/``clus`` have shape (≥ nk + 1, ny + 2, nx + 2): padded index (k, j, i) is voxel
+    (zbase − 1 + k, j − 1, i − 1); cubes with origin k ∈ [0, nk), j ∈ [j0, j1) are
+    counted. ``cube[idx]`` holds the ×4 n–w and n–s pair counts per
     direction class, 8·χ of the n corners and "holds an excluded voxel" of configuration idx.
     ``single``: a cube holds at most one cluster (26-connectivity), so the label of its first n
     corner stands for all. Returns the number of n voxels without a cluster id.
     """
-    nk = codes.shape[0] - 1
-    nj = codes.shape[1] - 1
     ni = codes.shape[2] - 1
     bad = 0
     labs = np.zeros(8, np.int64)
     cods = np.zeros(8, np.int64)
     for k in range(nk):
-        for j in range(nj):
+        for j in range(j0, j1):
             r0 = codes[k, j]
             r1 = codes[k, j + 1]
             r2 = codes[k + 1, j]
@@ -519,30 +533,63 @@ def cluster_lattice_measures(labels, cluster_labels, voxel_size: float = 1.0, *,
         axis=1).astype(np.int16))
     ps, pt, pc, pw = _pair_table()
 
-    def check(p):
-        _check_codes(p)
-        return p.astype(np.uint8, copy=False)
-
-    slabs = zip(iter_slabs(src, depth, convert=check), iter_slabs(csrc, depth), strict=True)
     nz, ny, nx = src.shape
-    padded: list[tuple[np.ndarray, np.ndarray] | None] = [None] * nw
+    # Two padded slab buffers, filled alternately by the producer while the workers read the
+    # other one; each slab is cut into ``nw`` row ranges, one item per range. A buffer is refilled
+    # only when no item of its previous slab is pending. Zero borders in y and x stay zero: only
+    # interiors are written.
+    bufs = [(np.zeros((depth + 1, ny + 2, nx + 2), np.uint8),
+             np.zeros((depth + 1, ny + 2, nx + 2), csrc.dtype)) for _ in range(2)]
+    cuts = np.linspace(0, ny + 1, nw + 1).round().astype(int)
+    band = (csrc.chunk_shape() or (0, ny))[1]
+    pending = [0, 0]
+    cond = threading.Condition()
+
+    def items():
+        for s, a in enumerate(range(0, nz + 1, depth)):
+            b = min(a + depth, nz + 1)
+            with cond:
+                cond.wait_for(lambda i=s % 2: pending[i] == 0)
+                pending[s % 2] = nw
+            codes, clus = bufs[s % 2]
+            if a == 0:
+                codes[0] = 0
+                clus[0] = 0
+            else:                                # halo plane a − 1: last plane of the last slab
+                prev_codes, prev_clus = bufs[(s - 1) % 2]
+                codes[0] = prev_codes[depth]
+                clus[0] = prev_clus[depth]
+            hi = min(b, nz)
+            for y0 in range(0, ny, band) if a < hi else ():    # chunk rows: bounded memory
+                y1 = min(y0 + band, ny)
+                fresh = src.region((a, y0, 0), (hi, y1, nx))
+                _check_codes(fresh)
+                codes[1:1 + hi - a, 1 + y0:1 + y1, 1:-1] = fresh
+                ids = csrc.region((a, y0, 0), (hi, y1, nx))
+                if ids.size and (ids.max() > n or (ids.dtype.kind == "i" and ids.min() < 0)):
+                    raise WetpathError(f"cluster ids must lie in 0..{n}", step="clusters")
+                clus[1:1 + hi - a, 1 + y0:1 + y1, 1:-1] = ids
+            if b > nz:
+                codes[1 + nz - a] = 0
+                clus[1 + nz - a] = 0
+            for p in range(nw):
+                yield s % 2, a, b - a, cuts[p], cuts[p + 1]
 
     def work(w, item):
-        (a, _b, codes_), (_, _, clus_) = item
-        if padded[w] is None:      # zero borders in y and x stay zero: only interiors are written
-            padded[w] = (np.zeros((depth + 1, ny + 2, nx + 2), np.uint8),
-                         np.zeros((depth + 1, ny + 2, nx + 2), csrc.dtype))
-        t = codes_.shape[0]
-        codes, clus = padded[w][0][:t], padded[w][1][:t]
-        codes[:, 1:-1, 1:-1] = codes_
-        clus[:, 1:-1, 1:-1] = clus_
-        bad = _cluster_cubes(codes, clus, a, cube, connectivity == 26, e8, nmask, ps, pt, pc, pw,
-                             CUBE_CORNERS, accs[w], bbmins[w], bbmaxs[w])
+        which, a, nk, j0, j1 = item
+        codes, clus = bufs[which]
+        try:
+            bad = _cluster_cubes(codes, clus, nk, a, j0, j1, cube, connectivity == 26, e8, nmask,
+                                 ps, pt, pc, pw, CUBE_CORNERS, accs[w], bbmins[w], bbmaxs[w])
+        finally:
+            with cond:
+                pending[which] -= 1
+                cond.notify_all()
         if bad:
             raise WetpathError(f"{bad} non-wetting voxels have no cluster id in cluster_labels",
                                step="clusters")
 
-    run_parallel(slabs, work, threads)
+    run_parallel(items(), work, threads, max_pending=nw)
     acc = np.sum(accs, axis=0)
     acc[:, 11] = np.max([a[:, 11] for a in accs], axis=0)
     bbmin = np.min(bbmins, axis=0)

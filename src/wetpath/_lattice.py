@@ -247,21 +247,29 @@ class _Source:
         self.is_dask = hasattr(arr, "dask") and hasattr(arr, "compute")
 
     def default_depth(self, fallback: int = 64) -> int:
-        if self.is_dask:
-            return int(self.arr.chunksize[0])
-        chunks = getattr(self.arr, "chunks", None)
-        if not self.is_numpy and chunks is not None and len(chunks) == 3:
-            return int(chunks[0])
-        return fallback
+        chunks = self.chunk_shape()
+        return fallback if chunks is None else chunks[0]
 
     def read(self, z0: int, z1: int) -> np.ndarray:
         """Planes [z0, z1) (clipped to the array), whole (y, x) extent, C-contiguous."""
-        z0, z1 = max(z0, 0), min(z1, self.shape[0])
+        return self.region((z0, 0, 0), (z1,) + self.shape[1:])
+
+    def region(self, lo, hi) -> np.ndarray:
+        """Box [lo, hi) clipped to the array, C-contiguous (a view for numpy when possible)."""
+        sl = tuple(slice(max(a, 0), min(b, n)) for a, b, n in zip(lo, hi, self.shape, strict=True))
+        out = self.arr[sl]
         if self.is_dask:
-            out = self.arr[z0:z1].compute(scheduler="synchronous")
-        else:
-            out = self.arr[z0:z1]
+            out = out.compute(scheduler="synchronous")
         return np.ascontiguousarray(out)
+
+    def chunk_shape(self) -> tuple[int, int, int] | None:
+        """Stored chunk shape of a zarr/dask array (None for numpy)."""
+        if self.is_dask:
+            return tuple(int(c) for c in self.arr.chunksize)
+        chunks = getattr(self.arr, "chunks", None)
+        if self.is_numpy or chunks is None or len(chunks) != 3:
+            return None
+        return tuple(int(c) for c in chunks)
 
 
 def _depth(chunks, src: _Source) -> int:
@@ -458,8 +466,9 @@ def measures_from_histogram(hist: np.ndarray, voxel_size: float = 1.0, *,
     h = _check_voxel_size(voxel_size)
     hist = np.asarray(hist, np.int64)
     counts = hist @ _lut("block")
-    e = _lut("e26" if connectivity == 26 else "e6") if connectivity in (6, 26) else euler_lut(
-        connectivity)
+    if connectivity not in (6, 26):
+        raise WetpathError(f"connectivity must be 6 or 26, got {connectivity}", step="lattice")
+    e = _lut(f"e{connectivity}")
     masks = _lut("masks")
     euler = {c: int(hist @ e[masks[:, c]]) // 8 for c in (1, 2, 3)}
     return _assemble(counts[:4], counts[4:13], h) | {

@@ -112,12 +112,12 @@ def _shift3(shift) -> tuple[int, int, int]:
 def _window(src: _Source, lo: tuple[int, ...], hi: tuple[int, ...]) -> np.ndarray:
     """Region [lo, hi) of a source in its own coordinates, zeros outside the array."""
     if all(l >= 0 for l in lo) and all(h <= n for h, n in zip(hi, src.shape, strict=True)):
-        return src.read(lo[0], hi[0])[:, lo[1]:hi[1], lo[2]:hi[2]]
+        return src.region(lo, hi)
     out = np.zeros(tuple(h - l for l, h in zip(lo, hi, strict=True)), src.dtype)
     clip_lo = [max(l, 0) for l in lo]
     clip_hi = [min(h, n) for h, n in zip(hi, src.shape, strict=True)]
     if all(c0 < c1 for c0, c1 in zip(clip_lo, clip_hi, strict=True)):
-        data = src.read(clip_lo[0], clip_hi[0])[:, clip_lo[1]:clip_hi[1], clip_lo[2]:clip_hi[2]]
+        data = src.region(clip_lo, clip_hi)
         dst = tuple(slice(c0 - l, c1 - l) for c0, c1, l in zip(clip_lo, clip_hi, lo, strict=True))
         out[dst] = data
     return out
@@ -157,16 +157,23 @@ def overlap_table(clusters_a, clusters_b, *, shift=None, chunks=None,
     tables = [[np.full(1 << 12, _EMPTY, np.int64), np.zeros(1 << 12, np.int64), 0]
               for _ in range(nw)]
 
-    def work(w, z0):
-        z1 = min(z0 + depth, hi[0])
-        a = _window(sa, (z0, lo[1], lo[2]), (z1, hi[1], hi[2]))
-        b = _window(sb, (z0 + dz, lo[1] + dy, lo[2] + dx), (z1 + dz, hi[1] + dy, hi[2] + dx))
-        if (a.size and a.min() < 0) or (b.size and b.min() < 0):
-            raise WetpathError("cluster ids must be non-negative", step="track")
+    # stored arrays are read in bands of one chunk row in y (bounded memory, each chunk decoded
+    # once); in-memory arrays in whole slabs
+    band = (sa.chunk_shape() or (0, hi[1] - lo[1]))[1]
+    boxes = [(z0, y0) for z0 in range(lo[0], hi[0], depth) for y0 in range(lo[1], hi[1], band)]
+
+    def work(w, box):
+        z0, y0 = box
+        z1, y1 = min(z0 + depth, hi[0]), min(y0 + band, hi[1])
+        a = _window(sa, (z0, y0, lo[2]), (z1, y1, hi[2]))
+        b = _window(sb, (z0 + dz, y0 + dy, lo[2] + dx), (z1 + dz, y1 + dy, hi[2] + dx))
+        for x in (a, b):
+            if x.size and ((x.dtype.kind == "i" and x.min() < 0) or x.max() >= 2**31):
+                raise WetpathError("cluster ids must lie in 0..2³¹ − 1", step="track")
         t = tables[w]
         t[0], t[1], t[2] = _overlap_pass(a, b, t[0], t[1], t[2])
 
-    run_parallel(iter(range(lo[0], hi[0], depth)), work, threads)
+    run_parallel(iter(boxes), work, threads)
     keys = np.concatenate([t[0][t[0] != _EMPTY] for t in tables])
     vals = np.concatenate([t[1][t[0] != _EMPTY] for t in tables])
     uk, inv = np.unique(keys, return_inverse=True)
