@@ -59,6 +59,7 @@ from __future__ import annotations
 
 import math
 import os
+import threading
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
@@ -136,45 +137,41 @@ def _edt_line(f, out, v, z):
 
 
 @njit(cache=True, nogil=True, parallel=True)
-def _sq_edt(feature, big):
+def _edt_pass(d):
+    """One separable pass of the squared distance transform along the last axis of ``d`` (a view
+    in any layout), in place, parallel over the first axis."""
+    n0, n1, n = d.shape
+    for i in prange(n0):
+        f, out = np.empty(n), np.empty(n)
+        v, z = np.empty(n, np.int64), np.empty(n + 1)
+        for j in range(n1):
+            for q in range(n):
+                f[q] = d[i, j, q]
+            _edt_line(f, out, v, z)
+            for q in range(n):
+                d[i, j, q] = out[q]
+
+
+def _sq_edt(feature: np.ndarray, big: float) -> np.ndarray:
     """Squared Euclidean distance (voxels²) of every voxel to the nearest ``True`` voxel of
-    ``feature``, capped at ``big``; separable exact transform, parallel over lines."""
-    nz, ny, nx = feature.shape
-    d = np.empty((nz, ny, nx), np.float64)
-    nmax = max(nz, ny, nx)
-    for i in prange(nz):                      # pass along x (also initialises)
-        f, out = np.empty(nmax), np.empty(nmax)
-        v, z = np.empty(nmax, np.int64), np.empty(nmax + 1)
-        for j in range(ny):
-            for k in range(nx):
-                f[k] = 0.0 if feature[i, j, k] else big
-            _edt_line(f[:nx], out[:nx], v, z)
-            for k in range(nx):
-                d[i, j, k] = min(out[k], big)
-    for i in prange(nz):                      # pass along y
-        f, out = np.empty(nmax), np.empty(nmax)
-        v, z = np.empty(nmax, np.int64), np.empty(nmax + 1)
-        for k in range(nx):
-            for j in range(ny):
-                f[j] = d[i, j, k]
-            _edt_line(f[:ny], out[:ny], v, z)
-            for j in range(ny):
-                d[i, j, k] = min(out[j], big)
-    for j in prange(ny):                      # pass along z
-        f, out = np.empty(nmax), np.empty(nmax)
-        v, z = np.empty(nmax, np.int64), np.empty(nmax + 1)
-        for k in range(nx):
-            for i in range(nz):
-                f[i] = d[i, j, k]
-            _edt_line(f[:nz], out[:nz], v, z)
-            for i in range(nz):
-                d[i, j, k] = min(out[i], big)
-    return d
+    ``feature``, capped at ``big``: three separable passes (x, y, z)."""
+    d = np.where(feature, 0.0, big)
+    for axis in (2, 1, 0):
+        _edt_pass(np.moveaxis(d, axis, -1))
+    return np.minimum(d, big, out=d)
+
+
+_EDT_LOCK = threading.Lock()
 
 
 def squared_distance(feature: np.ndarray, cap: float) -> np.ndarray:
-    """Squared distance (voxels²) to the nearest ``True`` voxel, exact below ``cap`` (voxels)."""
-    return _sq_edt(np.ascontiguousarray(feature, dtype=np.bool_), float(cap) ** 2 + 1.0)
+    """Squared distance (voxels²) to the nearest ``True`` voxel, exact below ``cap`` (voxels).
+
+    The compiled transform is itself parallel; a lock keeps worker threads from launching it
+    concurrently (numba's default threading layer does not allow that).
+    """
+    with _EDT_LOCK:
+        return _sq_edt(np.ascontiguousarray(feature, dtype=np.bool_), float(cap) ** 2 + 1.0)
 
 
 def wall_distance(solid: np.ndarray, clip: float) -> np.ndarray:
