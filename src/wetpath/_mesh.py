@@ -36,7 +36,8 @@ vertex, edge) of the unsmoothed mesh, so sums over chunks equal whole-array sums
 chunked and whole results agree to ~1e-6 relative).
 
 Clusters whose interface rises less than 3σ + 4 voxels above the solid (thin films, flat
-strongly non-wetting caps) cannot be band-extrapolated: they are flagged ``resolved = False``,
+strongly non-wetting caps), or whose n–w area lies mostly closer than 3σ to the solid (narrow
+pores), cannot be band-extrapolated: they are flagged ``resolved = False``,
 their ∫K, loops and line quantities are NaN/0 and their areas are the raw sums of faces
 classified by the phase across them.
 
@@ -78,6 +79,7 @@ BAND_WIDTH = 3.0          # voxels: band levels m = 3σ ... 3σ + BAND_WIDTH
 BAND_LEVELS = 7
 CURVATURE_DISTANCE = 4.0  # in σ: vertices used for κ are at least this far from the solid
 RESOLVE_MARGIN = 1.0      # voxels above the top band level the interface must reach
+RESOLVE_FRACTION = 0.5   # share of the n–w area that must lie beyond the first band level
 HALO_EXTRA = 12          # voxels beyond the blur radius: smoothing rings and wall distances
 _OUTSIDE = 255            # label of the virtual padding outside the array
 
@@ -833,7 +835,10 @@ def _finish(acc, ncl, levels, sigma, h) -> pd.DataFrame:
                 seg_cl.append(np.full(len(p["segs"]), cid))
         chi_n = 0.5 * (tot["V"] - tot["E"] + tot["F"])
         has_mesh = tot["F"] > 0
-        resolved = bool(has_mesh and dmax >= levels[-1] + RESOLVE_MARGIN)
+        # resolvable: the interface rises above the band, and most of its n–w area lies there
+        # (otherwise the band sees too little of it: narrow pores, films)
+        resolved = bool(has_mesh and dmax >= levels[-1] + RESOLVE_MARGIN
+                        and tot["A"][0] >= RESOLVE_FRACTION * tot["Anw_raw"])
         nan = float("nan")
         touches_solid = bool(np.any(np.asarray(tot["L"]) > 0))
         if resolved:
