@@ -63,6 +63,7 @@ import os
 import threading
 from concurrent.futures import ThreadPoolExecutor
 
+import numba
 import numpy as np
 import pandas as pd
 from numba import njit, prange
@@ -718,7 +719,8 @@ def mesh_measures(labels: np.ndarray, voxel_size: float = 1.0, *,
         Core chunk size (voxels per axis) for bounded memory; None meshes whole clusters. Results
         agree to ~1e-6 relative whatever the chunking.
     threads : int, optional
-        Worker threads (None: all cores).
+        Worker threads over chunks (or over clusters when ``chunks`` is None) and threads of the
+        compiled distance transform (None: all cores).
 
     Returns
     -------
@@ -772,7 +774,10 @@ def mesh_measures(labels: np.ndarray, voxel_size: float = 1.0, *,
     boxes = [(np.array([rz[0], ry[0], rx[0]]), np.array([rz[1], ry[1], rx[1]]))
              for rz in ranges[0] for ry in ranges[1] for rx in ranges[2]]
 
+    numba_threads = max(1, min(threads, numba.config.NUMBA_NUM_THREADS))
+
     def chunk(own_lo, own_hi, pool=None):
+        numba.set_num_threads(numba_threads)      # thread-local in numba: set in each worker
         # clusters whose mesh cells [bbox_lo − 1, bbox_hi) meet the owned range
         hit = np.all((bb[:, :3] - 1 < own_hi) & (bb[:, 3:] > own_lo), axis=1)
         ids = np.flatnonzero(hit) + 1
