@@ -68,14 +68,21 @@ def main() -> None:
     p.add_argument("--threads", type=int, default=os.cpu_count() or 1)
     p.add_argument("--child", action="store_true", help=argparse.SUPPRESS)
     p.add_argument("--path", help=argparse.SUPPRESS)
+    p.add_argument("--make", action="store_true", help=argparse.SUPPRESS)
     a = p.parse_args()
     if a.child:
         print(json.dumps(run_one(a.path, a.chunks or None, a.threads)))
         return
+    if a.make:
+        make_medium(a.sizes[0], a.path)
+        return
     sizes = [64] if a.smoke else a.sizes
     with tempfile.TemporaryDirectory() as folder:
         for size in sizes:
-            path = make_medium(size, folder)
+            # build the medium in its own process: ru_maxrss carries over from parent to child
+            subprocess.run([sys.executable, __file__, "--make", "--sizes", str(size), "--path",
+                            folder], check=True)
+            path = os.path.join(folder, f"medium_{size}.npz")
             out = subprocess.run([sys.executable, __file__, "--child", "--path", path,
                                   "--chunks", str(a.chunks), "--threads", str(a.threads)],
                                  capture_output=True, text=True, check=True)
