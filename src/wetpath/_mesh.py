@@ -177,6 +177,22 @@ def squared_distance(feature: np.ndarray, cap: float) -> np.ndarray:
         return _sq_edt(np.ascontiguousarray(feature, dtype=np.bool_), float(cap) ** 2 + 1.0)
 
 
+@njit(cache=True, nogil=True, parallel=True)
+def _signed_distance(d_out2, d_in2, solid, clip):
+    """0.5 − √d_in² in the solid, √d_out² − 0.5 in the pore, clipped to ±clip (float32)."""
+    nz, ny, nx = solid.shape
+    out = np.empty((nz, ny, nx), np.float32)
+    for i in prange(nz):
+        for j in range(ny):
+            for k in range(nx):
+                if solid[i, j, k]:
+                    v = 0.5 - math.sqrt(d_in2[i, j, k])
+                else:
+                    v = math.sqrt(d_out2[i, j, k]) - 0.5
+                out[i, j, k] = min(max(v, -clip), clip)
+    return out
+
+
 def wall_distance(solid: np.ndarray, clip: float) -> np.ndarray:
     """Signed distance (voxels) to the voxelised solid surface, positive in the pore, clipped to
     ±``clip`` and smoothed by a Gaussian of 1 voxel (removes the staircase of tilted walls).
@@ -190,10 +206,8 @@ def wall_distance(solid: np.ndarray, clip: float) -> np.ndarray:
         if solid.all():
             out[...] = -clip
         else:
-            d_out = np.sqrt(squared_distance(solid, clip + 2.0))
-            d_in = np.sqrt(squared_distance(~solid, clip + 2.0))
-            out = np.where(solid, 0.5 - d_in, d_out - 0.5).astype(np.float32)
-            np.clip(out, -clip, clip, out=out)
+            out = _signed_distance(squared_distance(solid, clip + 2.0),
+                                   squared_distance(~solid, clip + 2.0), solid, clip)
     return ndimage.gaussian_filter(out, 1.0, mode="nearest")
 
 
