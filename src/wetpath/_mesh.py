@@ -81,7 +81,7 @@ BAND_LEVELS = 7
 CURVATURE_DISTANCE = 4.0  # in σ: vertices used for κ are at least this far from the solid
 RESOLVE_MARGIN = 1.0      # voxels above the top band level the interface must reach
 RESOLVE_FRACTION = 0.5   # share of the n–w area that must lie beyond the first band level
-HALO_EXTRA = 12          # voxels beyond the blur radius: smoothing rings and wall distances
+HALO_EXTRA = 8           # voxels beyond the blur radius: smoothing rings and wall distances
 _OUTSIDE = 255            # label of the virtual padding outside the array
 
 COLUMNS = ["cluster", "area_nw_mesh", "area_ns_mesh", "curvature_nw", "curvature_nw_std",
