@@ -170,8 +170,8 @@ _EDT_LOCK = threading.Lock()
 def squared_distance(feature: np.ndarray, cap: float) -> np.ndarray:
     """Squared distance (voxels²) to the nearest ``True`` voxel, exact below ``cap`` (voxels).
 
-    The compiled transform is itself parallel; a lock keeps worker threads from launching it
-    concurrently (numba's default threading layer does not allow that).
+    The compiled transform is itself parallel; a lock keeps worker threads from launching
+    parallel kernels concurrently (numba's default threading layer does not allow that).
     """
     with _EDT_LOCK:
         return _sq_edt(np.ascontiguousarray(feature, dtype=np.bool_), float(cap) ** 2 + 1.0)
@@ -206,8 +206,10 @@ def wall_distance(solid: np.ndarray, clip: float) -> np.ndarray:
         if solid.all():
             out[...] = -clip
         else:
-            out = _signed_distance(squared_distance(solid, clip + 2.0),
-                                   squared_distance(~solid, clip + 2.0), solid, clip)
+            d_out2 = squared_distance(solid, clip + 2.0)
+            d_in2 = squared_distance(~solid, clip + 2.0)
+            with _EDT_LOCK:
+                out = _signed_distance(d_out2, d_in2, solid, clip)
     return ndimage.gaussian_filter(out, 1.0, mode="nearest")
 
 
@@ -788,7 +790,9 @@ def mesh_measures(labels: np.ndarray, voxel_size: float = 1.0, *,
     boxes = [(np.array([rz[0], ry[0], rx[0]]), np.array([rz[1], ry[1], rx[1]]))
              for rz in ranges[0] for ry in ranges[1] for rx in ranges[2]]
 
-    numba_threads = max(1, min(threads, numba.config.NUMBA_NUM_THREADS))
+    # compiled parallel kernels use the threads only when no pool runs chunks concurrently
+    numba_threads = max(1, min(threads if len(boxes) == 1 else 1,
+                               numba.config.NUMBA_NUM_THREADS))
 
     def chunk(own_lo, own_hi, pool=None):
         numba.set_num_threads(numba_threads)      # thread-local in numba: set in each worker
