@@ -6,9 +6,10 @@ Usage::
     PYTHONPATH=src python benchmarks/bench_mesh.py --smoke    # 64³, seconds
 
 Reports, per size: Mvox/s of ``mesh_measures`` (labelling excluded: clusters are given) with the
-given chunk size and threads, the number of clusters and resolved clusters, and the peak resident
-memory of the process (``ru_maxrss``) — each size runs in a fresh subprocess so that the peaks do
-not mix. The media come from ``wetpath.synthetic.random_medium`` (~35 % porosity, S_w = 0.5).
+given chunk size (``--chunks 0``: whole clusters) and threads, the number of clusters and of
+resolved clusters, and the peak resident memory (``ru_maxrss``) of a fresh subprocess that only
+loads the medium and measures it. The media come from ``wetpath.synthetic.random_medium``
+(~35 % porosity, S_w = 0.5, grain scale 3 voxels).
 """
 
 from __future__ import annotations
@@ -19,19 +20,19 @@ import os
 import resource
 import subprocess
 import sys
+import tempfile
 import time
 
 
-def run_one(size: int, chunks: int | None, threads: int) -> dict:
+def run_one(path: str, chunks: int | None, threads: int) -> dict:
     import numpy as np
-    from scipy import ndimage
 
-    from wetpath import synthetic
     from wetpath._mesh import mesh_measures, mesh_totals
 
-    labels = synthetic.random_medium((size,) * 3, seed=1)
-    clusters, _ = ndimage.label(labels == 3, np.ones((3, 3, 3), bool))
-    mesh_measures(labels[:32, :32, :32], threads=1)            # compile / load numba kernels
+    data = np.load(path)
+    labels, clusters = data["labels"], data["clusters"]
+    size = labels.shape[0]
+    mesh_measures(labels[:32, :32, :32], threads=1)            # load the compiled kernels
     rss0 = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
     t0 = time.perf_counter()
     table = mesh_measures(labels, clusters=clusters, chunks=chunks, threads=threads)
@@ -41,8 +42,22 @@ def run_one(size: int, chunks: int | None, threads: int) -> dict:
             "mvox_per_s": round(size**3 / seconds / 1e6, 3), "clusters": len(table),
             "resolved": int(table["resolved"].sum()),
             "area_nw_mesh": round(totals["area_nw_mesh"], 1),
-            "peak_rss_mb_before": round(rss0 / 1024, 1),
+            "rss_mb_before": round(rss0 / 1024, 1),
             "peak_rss_mb": round(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, 1)}
+
+
+def make_medium(size: int, folder: str) -> str:
+    """Write a random medium and its 26-connected n clusters to ``folder``; return the path."""
+    import numpy as np
+    from scipy import ndimage
+
+    from wetpath import synthetic
+
+    labels = synthetic.random_medium((size,) * 3, seed=1)
+    clusters, _ = ndimage.label(labels == 3, np.ones((3, 3, 3), bool))
+    path = os.path.join(folder, f"medium_{size}.npz")
+    np.savez(path, labels=labels, clusters=clusters.astype(np.int32))
+    return path
 
 
 def main() -> None:
@@ -52,16 +67,26 @@ def main() -> None:
     p.add_argument("--chunks", type=int, default=128)
     p.add_argument("--threads", type=int, default=os.cpu_count() or 1)
     p.add_argument("--child", action="store_true", help=argparse.SUPPRESS)
+    p.add_argument("--path", help=argparse.SUPPRESS)
+    p.add_argument("--make", action="store_true", help=argparse.SUPPRESS)
     a = p.parse_args()
     if a.child:
-        print(json.dumps(run_one(a.sizes[0], a.chunks or None, a.threads)))
+        print(json.dumps(run_one(a.path, a.chunks or None, a.threads)))
+        return
+    if a.make:
+        make_medium(a.sizes[0], a.path)
         return
     sizes = [64] if a.smoke else a.sizes
-    for size in sizes:
-        out = subprocess.run([sys.executable, __file__, "--child", "--sizes", str(size),
-                              "--chunks", str(a.chunks), "--threads", str(a.threads)],
-                             capture_output=True, text=True, check=True)
-        print(out.stdout.strip(), flush=True)
+    with tempfile.TemporaryDirectory() as folder:
+        for size in sizes:
+            # build the medium in its own process: ru_maxrss carries over from parent to child
+            subprocess.run([sys.executable, __file__, "--make", "--sizes", str(size), "--path",
+                            folder], check=True)
+            path = os.path.join(folder, f"medium_{size}.npz")
+            out = subprocess.run([sys.executable, __file__, "--child", "--path", path,
+                                  "--chunks", str(a.chunks), "--threads", str(a.threads)],
+                                 capture_output=True, text=True, check=True)
+            print(out.stdout.strip(), flush=True)
 
 
 if __name__ == "__main__":

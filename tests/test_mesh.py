@@ -158,7 +158,7 @@ def test_chunk_invariance_random_medium():
         a, b = ref[cols].to_numpy(float), other[cols].to_numpy(float)
         np.testing.assert_array_equal(np.isnan(a), np.isnan(b))
         np.testing.assert_allclose(b, a, rtol=1e-4, atol=1e-6)
-    assert ref["resolved"].sum() >= 5
+    assert ref["resolved"].sum() >= 3
     totals = mesh_totals(ref)
     assert totals["unresolved_clusters"] == int((~ref["resolved"]).sum())
 

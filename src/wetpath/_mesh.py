@@ -36,7 +36,8 @@ vertex, edge) of the unsmoothed mesh, so sums over chunks equal whole-array sums
 chunked and whole results agree to ~1e-6 relative).
 
 Clusters whose interface rises less than 3σ + 4 voxels above the solid (thin films, flat
-strongly non-wetting caps) cannot be band-extrapolated: they are flagged ``resolved = False``,
+strongly non-wetting caps), or whose n–w area lies mostly closer than 3σ to the solid (narrow
+pores), cannot be band-extrapolated: they are flagged ``resolved = False``,
 their ∫K, loops and line quantities are NaN/0 and their areas are the raw sums of faces
 classified by the phase across them.
 
@@ -59,8 +60,10 @@ from __future__ import annotations
 
 import math
 import os
+import threading
 from concurrent.futures import ThreadPoolExecutor
 
+import numba
 import numpy as np
 import pandas as pd
 from numba import njit, prange
@@ -77,7 +80,8 @@ BAND_WIDTH = 3.0          # voxels: band levels m = 3σ ... 3σ + BAND_WIDTH
 BAND_LEVELS = 7
 CURVATURE_DISTANCE = 4.0  # in σ: vertices used for κ are at least this far from the solid
 RESOLVE_MARGIN = 1.0      # voxels above the top band level the interface must reach
-HALO_EXTRA = 12          # voxels beyond the blur radius: smoothing rings and wall distances
+RESOLVE_FRACTION = 0.5   # share of the n–w area that must lie beyond the first band level
+HALO_EXTRA = 8           # voxels beyond the blur radius: smoothing rings and wall distances
 _OUTSIDE = 255            # label of the virtual padding outside the array
 
 COLUMNS = ["cluster", "area_nw_mesh", "area_ns_mesh", "curvature_nw", "curvature_nw_std",
@@ -136,45 +140,57 @@ def _edt_line(f, out, v, z):
 
 
 @njit(cache=True, nogil=True, parallel=True)
-def _sq_edt(feature, big):
+def _edt_pass(d):
+    """One separable pass of the squared distance transform along the last axis of ``d`` (a view
+    in any layout), in place, parallel over the first axis."""
+    n0, n1, n = d.shape
+    for i in prange(n0):
+        f, out = np.empty(n), np.empty(n)
+        v, z = np.empty(n, np.int64), np.empty(n + 1)
+        for j in range(n1):
+            for q in range(n):
+                f[q] = d[i, j, q]
+            _edt_line(f, out, v, z)
+            for q in range(n):
+                d[i, j, q] = out[q]
+
+
+def _sq_edt(feature: np.ndarray, big: float) -> np.ndarray:
     """Squared Euclidean distance (voxels²) of every voxel to the nearest ``True`` voxel of
-    ``feature``, capped at ``big``; separable exact transform, parallel over lines."""
-    nz, ny, nx = feature.shape
-    d = np.empty((nz, ny, nx), np.float64)
-    nmax = max(nz, ny, nx)
-    for i in prange(nz):                      # pass along x (also initialises)
-        f, out = np.empty(nmax), np.empty(nmax)
-        v, z = np.empty(nmax, np.int64), np.empty(nmax + 1)
-        for j in range(ny):
-            for k in range(nx):
-                f[k] = 0.0 if feature[i, j, k] else big
-            _edt_line(f[:nx], out[:nx], v, z)
-            for k in range(nx):
-                d[i, j, k] = min(out[k], big)
-    for i in prange(nz):                      # pass along y
-        f, out = np.empty(nmax), np.empty(nmax)
-        v, z = np.empty(nmax, np.int64), np.empty(nmax + 1)
-        for k in range(nx):
-            for j in range(ny):
-                f[j] = d[i, j, k]
-            _edt_line(f[:ny], out[:ny], v, z)
-            for j in range(ny):
-                d[i, j, k] = min(out[j], big)
-    for j in prange(ny):                      # pass along z
-        f, out = np.empty(nmax), np.empty(nmax)
-        v, z = np.empty(nmax, np.int64), np.empty(nmax + 1)
-        for k in range(nx):
-            for i in range(nz):
-                f[i] = d[i, j, k]
-            _edt_line(f[:nz], out[:nz], v, z)
-            for i in range(nz):
-                d[i, j, k] = min(out[i], big)
-    return d
+    ``feature``, capped at ``big``: three separable passes (x, y, z)."""
+    d = np.where(feature, 0.0, big)
+    for axis in (2, 1, 0):
+        _edt_pass(np.moveaxis(d, axis, -1))
+    return np.minimum(d, big, out=d)
+
+
+_EDT_LOCK = threading.Lock()
 
 
 def squared_distance(feature: np.ndarray, cap: float) -> np.ndarray:
-    """Squared distance (voxels²) to the nearest ``True`` voxel, exact below ``cap`` (voxels)."""
-    return _sq_edt(np.ascontiguousarray(feature, dtype=np.bool_), float(cap) ** 2 + 1.0)
+    """Squared distance (voxels²) to the nearest ``True`` voxel, exact below ``cap`` (voxels).
+
+    The compiled transform is itself parallel; a lock keeps worker threads from launching
+    parallel kernels concurrently (numba's default threading layer does not allow that).
+    """
+    with _EDT_LOCK:
+        return _sq_edt(np.ascontiguousarray(feature, dtype=np.bool_), float(cap) ** 2 + 1.0)
+
+
+@njit(cache=True, nogil=True, parallel=True)
+def _signed_distance(d_out2, d_in2, solid, clip):
+    """0.5 − √d_in² in the solid, √d_out² − 0.5 in the pore, clipped to ±clip (float32)."""
+    nz, ny, nx = solid.shape
+    out = np.empty((nz, ny, nx), np.float32)
+    for i in prange(nz):
+        for j in range(ny):
+            for k in range(nx):
+                if solid[i, j, k]:
+                    v = 0.5 - math.sqrt(d_in2[i, j, k])
+                else:
+                    v = math.sqrt(d_out2[i, j, k]) - 0.5
+                out[i, j, k] = min(max(v, -clip), clip)
+    return out
 
 
 def wall_distance(solid: np.ndarray, clip: float) -> np.ndarray:
@@ -190,10 +206,10 @@ def wall_distance(solid: np.ndarray, clip: float) -> np.ndarray:
         if solid.all():
             out[...] = -clip
         else:
-            d_out = np.sqrt(squared_distance(solid, clip + 2.0))
-            d_in = np.sqrt(squared_distance(~solid, clip + 2.0))
-            out = np.where(solid, 0.5 - d_in, d_out - 0.5).astype(np.float32)
-            np.clip(out, -clip, clip, out=out)
+            d_out2 = squared_distance(solid, clip + 2.0)
+            d_in2 = squared_distance(~solid, clip + 2.0)
+            with _EDT_LOCK:
+                out = _signed_distance(d_out2, d_in2, solid, clip)
     return ndimage.gaussian_filter(out, 1.0, mode="nearest")
 
 
@@ -719,7 +735,8 @@ def mesh_measures(labels: np.ndarray, voxel_size: float = 1.0, *,
         Core chunk size (voxels per axis) for bounded memory; None meshes whole clusters. Results
         agree to ~1e-6 relative whatever the chunking.
     threads : int, optional
-        Worker threads (None: all cores).
+        Worker threads over chunks (or over clusters when ``chunks`` is None) and threads of the
+        compiled distance transform (None: all cores).
 
     Returns
     -------
@@ -773,7 +790,12 @@ def mesh_measures(labels: np.ndarray, voxel_size: float = 1.0, *,
     boxes = [(np.array([rz[0], ry[0], rx[0]]), np.array([rz[1], ry[1], rx[1]]))
              for rz in ranges[0] for ry in ranges[1] for rx in ranges[2]]
 
+    # compiled parallel kernels use the threads only when no pool runs chunks concurrently
+    numba_threads = max(1, min(threads if len(boxes) == 1 else 1,
+                               numba.config.NUMBA_NUM_THREADS))
+
     def chunk(own_lo, own_hi, pool=None):
+        numba.set_num_threads(numba_threads)      # thread-local in numba: set in each worker
         # clusters whose mesh cells [bbox_lo − 1, bbox_hi) meet the owned range
         hit = np.all((bb[:, :3] - 1 < own_hi) & (bb[:, 3:] > own_lo), axis=1)
         ids = np.flatnonzero(hit) + 1
@@ -836,7 +858,10 @@ def _finish(acc, ncl, levels, sigma, h) -> pd.DataFrame:
                 seg_cl.append(np.full(len(p["segs"]), cid))
         chi_n = 0.5 * (tot["V"] - tot["E"] + tot["F"])
         has_mesh = tot["F"] > 0
-        resolved = bool(has_mesh and dmax >= levels[-1] + RESOLVE_MARGIN)
+        # resolvable: the interface rises above the band, and most of its n–w area lies there
+        # (otherwise the band sees too little of it: narrow pores, films)
+        resolved = bool(has_mesh and dmax >= levels[-1] + RESOLVE_MARGIN
+                        and tot["A"][0] >= RESOLVE_FRACTION * tot["Anw_raw"])
         nan = float("nan")
         touches_solid = bool(np.any(np.asarray(tot["L"]) > 0))
         if resolved:
