@@ -64,7 +64,8 @@ def snakemake(workdir: Path, *args: str, src: Path = SRC, configfile: str = "con
 
 
 def planned_jobs(output: str) -> set[tuple[str, str | None]]:
-    """(rule, step) pairs of a `snakemake -n` listing (step None for rules without one)."""
+    """(rule, step) pairs of a `snakemake -n` listing (step None for rules without one, "a>b" for
+    the increment a -> b)."""
     jobs, rule, step = set(), None, None
     for line in output.splitlines() + ["rule end:"]:
         m = re.match(r"^(?:local)?rule (\w+):", line)
@@ -75,6 +76,9 @@ def planned_jobs(output: str) -> set[tuple[str, str | None]]:
         w = re.search(r"wildcards: .*step=([\w.-]+)", line)
         if w:
             step = w.group(1)
+        w = re.search(r"wildcards: .*\ba=([\w.-]+), b=([\w.-]+)", line)
+        if w:  # an increment: "a>b"
+            step = f"{w.group(1)}>{w.group(2)}"
     return jobs
 
 

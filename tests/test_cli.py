@@ -92,7 +92,7 @@ def test_run_without_snakefile(tmp_path):
 
 def test_demo_writes_the_contracted_layout(tmp_path):
     pytest.importorskip("wetpath._demo", reason="wetpath._demo is written on the demo branch")
-    assert main(["demo", str(tmp_path / "d"), "--size", "32"]) == 0
+    assert main(["demo", str(tmp_path / "d"), "--size", "48"]) == 0
     for kind in ("labels", "grayscale"):
         times = pd.read_csv(tmp_path / "d" / kind / "times.csv")
         assert list(times.columns[:3]) == ["step", "time_s", "file"]

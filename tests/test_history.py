@@ -7,7 +7,7 @@ import math
 import numpy as np
 import pandas as pd
 import pytest
-from tube_bundle_series import ADVANCING_DEG, RECEDING_DEG, tube_bundle_path
+from .tube_bundle_series import ADVANCING_DEG, RECEDING_DEG, tube_bundle_path
 
 from wetpath import WetpathError
 from wetpath._history import (

@@ -10,7 +10,7 @@ import pytest
 from matplotlib.colors import to_rgb
 from matplotlib.image import imread
 from skimage.color import deltaE_ciede2000, rgb2lab
-from tube_bundle_series import tube_bundle_path
+from .tube_bundle_series import tube_bundle_path
 
 from wetpath import WetpathError
 from wetpath._history import build_history

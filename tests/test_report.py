@@ -10,7 +10,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from tube_bundle_series import tube_bundle_path
+from .tube_bundle_series import tube_bundle_path
 
 from wetpath._history import branch_summary, build_history
 from wetpath._plots import mid_plane_slices

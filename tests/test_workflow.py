@@ -80,7 +80,10 @@ def test_changed_input_reruns_only_its_step(finished, tmp_path):
     changed[changed == 2] = 3
     tifffile.imwrite(wf / "data" / "step_001.tif", changed)
     jobs = planned_jobs(snakemake(wf, "-n", src=wf / "src").stdout)
-    assert jobs == {("ingest", "step_001"), ("summarise", "step_001"), ("states", None),
+    # the step's own jobs, the two increments that touch it, and the aggregates
+    assert jobs == {("ingest", "step_001"), ("summarise", "step_001"), ("measure", "step_001"),
+                    ("track", "step_000>step_001"), ("track", "step_001>step_002"),
+                    ("states", None), ("angles", None), ("history", None),
                     ("all", None)}
 
 
@@ -88,7 +91,8 @@ def test_per_step_setting_reruns_only_that_step(finished, tmp_path):
     wf = _copy(finished, tmp_path)
     (wf / "config.yaml").write_text(CONFIG + "    steps:\n      step_002:\n        chunks: 8\n")
     jobs = planned_jobs(snakemake(wf, "-n", src=wf / "src").stdout)
-    assert jobs == {("ingest", "step_002"), ("summarise", "step_002"), ("states", None),
+    assert jobs == {("ingest", "step_002"), ("summarise", "step_002"), ("measure", "step_002"),
+                    ("track", "step_001>step_002"), ("states", None), ("angles", None), ("history", None),
                     ("all", None)}
 
 
@@ -97,8 +101,10 @@ def test_appended_scan_processes_only_the_new_step(finished, tmp_path):
     extra = series_labels(n_steps=4)[3]
     write_series(wf / "data", [extra], start=3)
     jobs = planned_jobs(snakemake(wf, "-n", src=wf / "src").stdout)
-    assert jobs == {("ingest", "step_003"), ("summarise", "step_003"), ("states", None),
-                    ("all", None)}
+    # the new step's jobs, its increment and the aggregates
+    assert jobs == {("ingest", "step_003"), ("summarise", "step_003"), ("measure", "step_003"),
+                    ("track", "step_002>step_003"), ("states", None), ("angles", None),
+                    ("history", None), ("all", None)}
 
 
 def test_code_change_reruns_every_rule(finished, tmp_path):

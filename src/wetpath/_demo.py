@@ -81,17 +81,17 @@ THETA_ADVANCING_DEG = 60.0  # contact angle (through brine) built into the imbib
 N_DRAINAGE_SCANS = 7  # after the brine-saturated scan step_000
 N_IMBIBITION_SCANS = 6
 
-_POROSITY = 0.29
-_GRAIN_RADIUS_MEDIAN = 8.5  # voxels (equivalent-sphere radius)
-_GRAIN_RADIUS_RANGE = (6.0, 12.0)
+_POROSITY = 0.35
+_GRAIN_RADIUS_MEDIAN = 22.0  # voxels (equivalent-sphere radius)
+_GRAIN_RADIUS_RANGE = (16.0, 30.0)
 _GRAIN_GAP = 0.8  # centres at least 0.8 (r_i + r_j) apart: grains overlap (sutured contacts)
-_LOOSE_POROSITY = 0.37  # porosity of the grain framework before cementation
-_CEMENT_SIGMA = 1.5  # voxels, neighbourhood that decides where cement grows
-_DRAINAGE_STEP = 0.25  # voxels between successive capillary radii of the quasi-static drainage
-_IMBIBITION_STEP = 0.5  # voxels between successive capillary radii of imbibition
+_LOOSE_POROSITY = 0.38  # porosity of the grain framework before cementation
+_CEMENT_SIGMA = 3.0  # voxels, neighbourhood that decides where cement grows
+_DRAINAGE_STEP = 0.5  # voxels between successive capillary radii of the quasi-static drainage
+_IMBIBITION_STEP = 1.0  # voxels between successive capillary radii of imbibition
 _MAX_DSW = 0.05  # largest saturation change between successive states of the fine path
-_R_MIN = 1.5  # voxels, smallest capillary radius of drainage
-_SW_END_DRAINAGE = 0.25  # drainage stops at this brine saturation (field of view)
+_R_MIN = 6.5  # voxels, smallest capillary radius of drainage (see the module notes on resolution)
+_SW_END_DRAINAGE = 0.3  # drainage stops at this brine saturation (field of view)
 _STRUCT26 = np.ones((3, 3, 3), dtype=bool)
 
 # grey levels (uint16 counts) of the invented scanner: dry pore (air), grain, brine, oil; the grain
