@@ -7,7 +7,6 @@ import math
 import numpy as np
 import pandas as pd
 import pytest
-from .tube_bundle_series import ADVANCING_DEG, RECEDING_DEG, tube_bundle_path
 
 from wetpath import WetpathError
 from wetpath._history import (
@@ -17,6 +16,8 @@ from wetpath._history import (
     format_branch_summary,
     write_history_tables,
 )
+
+from .tube_bundle_series import ADVANCING_DEG, RECEDING_DEG, tube_bundle_path
 
 D, I, S = "drainage", "imbibition", "static"
 

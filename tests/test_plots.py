@@ -10,7 +10,6 @@ import pytest
 from matplotlib.colors import to_rgb
 from matplotlib.image import imread
 from skimage.color import deltaE_ciede2000, rgb2lab
-from .tube_bundle_series import tube_bundle_path
 
 from wetpath import WetpathError
 from wetpath._history import build_history
@@ -24,6 +23,8 @@ from wetpath._plots import (
     plot_history,
     plot_phase_slices,
 )
+
+from .tube_bundle_series import tube_bundle_path
 
 
 @pytest.fixture(scope="module")

@@ -10,12 +10,13 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from .tube_bundle_series import tube_bundle_path
 
 from wetpath._history import branch_summary, build_history
 from wetpath._plots import mid_plane_slices
 from wetpath._report import flag_warnings, write_report
 from wetpath.synthetic import tube_meniscus
+
+from .tube_bundle_series import tube_bundle_path
 
 ROOT = Path(__file__).resolve().parents[1]
 

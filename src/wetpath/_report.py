@@ -139,7 +139,9 @@ def software_versions() -> dict[str, str]:
 
 def _raised(row: pd.Series) -> str:
     """The flags raised on one increment row, as short text ("" when none)."""
-    return ", ".join(f.removeprefix("flag_").replace("_", " ") for f in INCREMENT_FLAGS
+    flags = [*INCREMENT_FLAGS, *(c for c in row.index
+                                 if str(c).startswith("flag_") and c not in INCREMENT_FLAGS)]
+    return ", ".join(f.removeprefix("flag_").replace("_", " ") for f in flags
                      if f in row.index and pd.notna(row[f]) and bool(row[f]))
 
 

@@ -272,7 +272,7 @@ def history_series(states_csv: str | os.PathLike, increments_csv: str | os.PathL
     """Saturation-path history, branch summary, figures and the HTML report of one series."""
     from ._history import branch_summary, build_history, write_history_tables
     from ._plots import mid_plane_slices
-    from ._report import flag_warnings, write_report
+    from ._report import write_report
     from ._store import open_step
 
     out = Path(out_folder)
@@ -285,7 +285,7 @@ def history_series(states_csv: str | os.PathLike, increments_csv: str | os.PathL
     picked = _first_mid_last(list(stores))
     slices, axes = mid_plane_slices([(Path(p).stem, np.asarray(open_step(p).labels[...]))
                                      for p in picked]) if picked else (None, ("y", "x"))
-    warnings = flag_warnings(increments)
+    warnings = []
     if "unresolved_clusters" in states:
         n = int(states["unresolved_clusters"].fillna(0).sum())
         if n:
