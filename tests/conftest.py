@@ -5,6 +5,7 @@ from __future__ import annotations
 import hashlib
 import os
 import re
+import shutil
 import subprocess
 import sys
 from pathlib import Path
@@ -76,6 +77,26 @@ def planned_jobs(output: str) -> set[tuple[str, str | None]]:
         if w:
             step = w.group(1)
     return jobs
+
+
+WORKFLOW_CONFIG = "series:\n  tiny:\n    input: data\n    voxel_size_um: 2.5\n    chunks: 16\n"
+
+
+def prepare_workflow(folder: Path, volumes=None, config: str = WORKFLOW_CONFIG) -> Path:
+    """A workflow folder: the series in ``data/``, ``config.yaml`` and a private copy of the
+    package sources in ``src/`` (so that a test can edit "the code")."""
+    write_series(folder / "data", series_labels() if volumes is None else volumes)
+    (folder / "config.yaml").write_text(config)
+    shutil.copytree(SRC, folder / "src", ignore=shutil.ignore_patterns("__pycache__"))
+    return folder
+
+
+@pytest.fixture(scope="session")
+def finished_workflow(tmp_path_factory) -> Path:
+    """The whole workflow run once on the tiny 3-step series (shared by the workflow tests)."""
+    folder = prepare_workflow(tmp_path_factory.mktemp("wf"))
+    snakemake(folder, src=folder / "src")
+    return folder
 
 
 @pytest.fixture
