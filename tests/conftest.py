@@ -79,6 +79,39 @@ def planned_jobs(output: str) -> set[tuple[str, str | None]]:
     return jobs
 
 
+def planned_job_wildcards(output: str) -> set[tuple[str, frozenset]]:
+    """(rule, wildcards as a frozenset of (name, value)) of every job in a `snakemake -n`
+    listing."""
+    jobs, rule, wildcards = set(), None, frozenset()
+    for line in output.splitlines() + ["rule end:"]:
+        m = re.match(r"^(?:local)?rule (\w+):", line)
+        if m:
+            if rule is not None:
+                jobs.add((rule, wildcards))
+            rule, wildcards = m.group(1), frozenset()
+        w = re.match(r"^\s+wildcards: (.*)$", line)
+        if w:
+            wildcards = frozenset(tuple(kv.split("=", 1)) for kv in w.group(1).split(", "))
+    return jobs
+
+
+def step_jobs(series: str, step: str, rules=("ingest", "summarise", "label", "measure")) -> set:
+    """The per-step jobs of one step in the form of :func:`planned_job_wildcards`."""
+    return {(r, frozenset({("series", series), ("step", step)})) for r in rules}
+
+
+def increment_jobs(series: str, a: str, b: str) -> set:
+    """The track and increment jobs of the increment a → b."""
+    return {(r, frozenset({("series", series), ("a", a), ("b", b)}))
+            for r in ("track", "increment")}
+
+
+def aggregate_jobs(series: str) -> set:
+    """The per-series aggregate jobs and the default target."""
+    return {(r, frozenset({("series", series)})) for r in ("states", "increments", "history")} | {
+        ("all", frozenset())}
+
+
 WORKFLOW_CONFIG = "series:\n  tiny:\n    input: data\n    voxel_size_um: 2.5\n    chunks: 16\n"
 
 

@@ -14,7 +14,17 @@ import pandas as pd
 import pytest
 import tifffile
 
-from .conftest import WORKFLOW_CONFIG, planned_jobs, series_labels, snakemake, write_series
+from .conftest import (
+    WORKFLOW_CONFIG,
+    aggregate_jobs,
+    increment_jobs,
+    planned_job_wildcards,
+    planned_jobs,
+    series_labels,
+    snakemake,
+    step_jobs,
+    write_series,
+)
 
 pytestmark = [pytest.mark.workflow, pytest.mark.xdist_group("workflow")]
 
@@ -57,17 +67,17 @@ def test_changed_input_reruns_only_its_step(finished, tmp_path):
     changed = series_labels()[1]
     changed[changed == 2] = 3
     tifffile.imwrite(wf / "data" / "step_001.tif", changed)
-    jobs = planned_jobs(snakemake(wf, "-n", src=wf / "src").stdout)
-    assert jobs == {("ingest", "step_001"), ("summarise", "step_001"), ("states", None),
-                    ("all", None)}
+    jobs = planned_job_wildcards(snakemake(wf, "-n", src=wf / "src").stdout)
+    assert jobs == (step_jobs("tiny", "step_001") | increment_jobs("tiny", "step_000", "step_001")
+                    | increment_jobs("tiny", "step_001", "step_002") | aggregate_jobs("tiny"))
 
 
 def test_per_step_setting_reruns_only_that_step(finished, tmp_path):
     wf = _copy(finished, tmp_path)
     (wf / "config.yaml").write_text(CONFIG + "    steps:\n      step_002:\n        chunks: 8\n")
-    jobs = planned_jobs(snakemake(wf, "-n", src=wf / "src").stdout)
-    assert jobs == {("ingest", "step_002"), ("summarise", "step_002"), ("states", None),
-                    ("all", None)}
+    jobs = planned_job_wildcards(snakemake(wf, "-n", src=wf / "src").stdout)
+    assert jobs == (step_jobs("tiny", "step_002") | increment_jobs("tiny", "step_001", "step_002")
+                    | aggregate_jobs("tiny"))
 
 
 def test_code_change_reruns_every_rule(finished, tmp_path):
