@@ -84,6 +84,22 @@ def test_summarise_rejects_a_shape_other_than_the_first_steps(tmp_path, tiny_vol
     assert _fingerprints(tmp_path) == before
 
 
+def test_truncated_tiff_fails_ingest_on_one_line_and_stays_untouched(tmp_path, tiny_volume):
+    """Header intact, pixel data cut: found while streaming, reported as one line."""
+    src = tmp_path / "step_004.tif"
+    tifffile.imwrite(src, tiny_volume)
+    src.write_bytes(src.read_bytes()[: src.stat().st_size // 2])
+    before = fingerprint(src)
+    out = tmp_path / "steps" / "step_004.zarr"
+    with pytest.raises(WetpathError) as info:
+        ingest_volume(src, out, voxel_size_um=1.0, chunks=8)
+    message = _one_line(str(info.value))
+    assert message.startswith(f"ingest step_004: {src}: ")
+    assert "cannot read" in message
+    assert not out.exists() and not list(out.parent.glob(".*tmp*"))
+    assert fingerprint(src) == before
+
+
 @pytest.mark.workflow
 @pytest.mark.xdist_group("workflow")
 def test_series_with_a_mis_shaped_volume_stops_before_any_analysis(tmp_path):

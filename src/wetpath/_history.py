@@ -20,13 +20,13 @@ from __future__ import annotations
 
 import math
 import os
-import tempfile
 from collections.abc import Sequence
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
+from ._atomic import atomic_write_bytes
 from ._errors import WetpathError
 
 __all__ = [
@@ -495,21 +495,6 @@ def format_branch_summary(source: str | os.PathLike | pd.DataFrame) -> str:
     return "\n".join([fmt_row(*header), rule, *(fmt_row(*row) for row in lines)])
 
 
-def replace_atomically(path: str | os.PathLike, data: bytes) -> Path:
-    """Write ``data`` to a temporary file beside ``path``, then ``os.replace`` it into place."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    return path
-
-
 def write_history_tables(out_dir: str | os.PathLike, history: pd.DataFrame,
                          branches: pd.DataFrame) -> list[Path]:
     """Write ``history.csv``, ``history.parquet`` and ``branches.csv`` atomically into ``out_dir``.
@@ -522,9 +507,9 @@ def write_history_tables(out_dir: str | os.PathLike, history: pd.DataFrame,
     buf = io.BytesIO()
     history.to_parquet(buf, index=False)
     return [
-        replace_atomically(out / HISTORY_FILES["history_csv"],
+        atomic_write_bytes(out / HISTORY_FILES["history_csv"],
                            history.to_csv(index=False).encode()),
-        replace_atomically(out / HISTORY_FILES["history_parquet"], buf.getvalue()),
-        replace_atomically(out / HISTORY_FILES["branches_csv"],
+        atomic_write_bytes(out / HISTORY_FILES["history_parquet"], buf.getvalue()),
+        atomic_write_bytes(out / HISTORY_FILES["branches_csv"],
                            branches.to_csv(index=False).encode()),
     ]

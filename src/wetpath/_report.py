@@ -19,7 +19,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ._history import INCREMENT_FLAGS, replace_atomically
+from ._atomic import atomic_write_bytes
+from ._history import INCREMENT_FLAGS
 from ._plots import plot_history
 
 __all__ = ["write_report", "flag_warnings", "software_versions"]
@@ -316,4 +317,4 @@ opposite kind.</p>
 (2017), Adv. Water Resour. 109, 158–169 (geometric angle).</p>
 </main></body></html>
 """
-    return replace_atomically(out_html, page.encode("utf-8"))
+    return atomic_write_bytes(out_html, page.encode("utf-8"))
