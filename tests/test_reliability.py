@@ -113,8 +113,8 @@ def test_series_with_a_mis_shaped_volume_stops_before_any_analysis(tmp_path):
     assert log == ("wetpath summarise: error: summarise step_001: data/step_001.tif: volumes of "
                    "different shapes within one series: shape (24, 24, 20) but the first step "
                    "step_000 (data/step_000.tif) has (24, 24, 24)")
-    assert not (wf / RESULTS / "clusters/step_001.zarr").exists()
-    assert not (wf / RESULTS / "measures/step_001.csv").exists()
+    # ingest and summarise go first (priority): no analysis job of any step has started
+    assert not (wf / RESULTS / "clusters").exists() and not (wf / RESULTS / "measures").exists()
     assert not (wf / RESULTS / "states.csv").exists()
     assert _fingerprints(wf / "data") == before
 

@@ -16,6 +16,8 @@ rule summarise:
         f"{RESULTS}/{{series}}/logs/summarise/{{step}}.log",
     params:
         code=CODE,
+    # validation first: every step is ingested and checked before any analysis job starts
+    priority: 1
     threads: 1
     resources:
         mem_mb=scaled_mem_mb(500, 0.5),
