@@ -5,6 +5,7 @@ from __future__ import annotations
 import hashlib
 import os
 import re
+import shutil
 import subprocess
 import sys
 from pathlib import Path
@@ -64,8 +65,7 @@ def snakemake(workdir: Path, *args: str, src: Path = SRC, configfile: str = "con
 
 
 def planned_jobs(output: str) -> set[tuple[str, str | None]]:
-    """(rule, step) pairs of a `snakemake -n` listing (step None for rules without one, "a>b" for
-    the increment a -> b)."""
+    """(rule, step) pairs of a `snakemake -n` listing (step None for rules without one)."""
     jobs, rule, step = set(), None, None
     for line in output.splitlines() + ["rule end:"]:
         m = re.match(r"^(?:local)?rule (\w+):", line)
@@ -76,10 +76,59 @@ def planned_jobs(output: str) -> set[tuple[str, str | None]]:
         w = re.search(r"wildcards: .*step=([\w.-]+)", line)
         if w:
             step = w.group(1)
-        w = re.search(r"wildcards: .*\ba=([\w.-]+), b=([\w.-]+)", line)
-        if w:  # an increment: "a>b"
-            step = f"{w.group(1)}>{w.group(2)}"
     return jobs
+
+
+def planned_job_wildcards(output: str) -> set[tuple[str, frozenset]]:
+    """(rule, wildcards as a frozenset of (name, value)) of every job in a `snakemake -n`
+    listing."""
+    jobs, rule, wildcards = set(), None, frozenset()
+    for line in output.splitlines() + ["rule end:"]:
+        m = re.match(r"^(?:local)?rule (\w+):", line)
+        if m:
+            if rule is not None:
+                jobs.add((rule, wildcards))
+            rule, wildcards = m.group(1), frozenset()
+        w = re.match(r"^\s+wildcards: (.*)$", line)
+        if w:
+            wildcards = frozenset(tuple(kv.split("=", 1)) for kv in w.group(1).split(", "))
+    return jobs
+
+
+def step_jobs(series: str, step: str, rules=("ingest", "summarise", "measure")) -> set:
+    """The per-step jobs of one step in the form of :func:`planned_job_wildcards`."""
+    return {(r, frozenset({("series", series), ("step", step)})) for r in rules}
+
+
+def increment_jobs(series: str, a: str, b: str) -> set:
+    """The job of the increment a → b (tracking and its energy balance)."""
+    return {("track", frozenset({("series", series), ("a", a), ("b", b)}))}
+
+
+def aggregate_jobs(series: str) -> set:
+    """The per-series aggregate jobs and the default target."""
+    return {(r, frozenset({("series", series)})) for r in ("states", "angles", "history")} | {
+        ("all", frozenset())}
+
+
+WORKFLOW_CONFIG = "series:\n  tiny:\n    input: data\n    voxel_size_um: 2.5\n    chunks: 16\n"
+
+
+def prepare_workflow(folder: Path, volumes=None, config: str = WORKFLOW_CONFIG) -> Path:
+    """A workflow folder: the series in ``data/``, ``config.yaml`` and a private copy of the
+    package sources in ``src/`` (so that a test can edit "the code")."""
+    write_series(folder / "data", series_labels() if volumes is None else volumes)
+    (folder / "config.yaml").write_text(config)
+    shutil.copytree(SRC, folder / "src", ignore=shutil.ignore_patterns("__pycache__"))
+    return folder
+
+
+@pytest.fixture(scope="session")
+def finished_workflow(tmp_path_factory) -> Path:
+    """The whole workflow run once on the tiny 3-step series (shared by the workflow tests)."""
+    folder = prepare_workflow(tmp_path_factory.mktemp("wf"))
+    snakemake(folder, src=folder / "src")
+    return folder
 
 
 @pytest.fixture

@@ -7,12 +7,7 @@ for a dry run.
 
 from __future__ import annotations
 
-import os
 import shutil
-import signal
-import subprocess
-import sys
-import time
 
 import numpy as np
 import pandas as pd
@@ -20,32 +15,25 @@ import pytest
 import tifffile
 
 from .conftest import (
-    REPO,
-    SRC,
+    WORKFLOW_CONFIG,
+    aggregate_jobs,
+    increment_jobs,
+    planned_job_wildcards,
     planned_jobs,
     series_labels,
     snakemake,
-    subprocess_env,
+    step_jobs,
     write_series,
 )
 
 pytestmark = [pytest.mark.workflow, pytest.mark.xdist_group("workflow")]
 
-CONFIG = "series:\n  tiny:\n    input: data\n    voxel_size_um: 2.5\n    chunks: 16\n"
+CONFIG = WORKFLOW_CONFIG
 
 
-def _prepare(folder, volumes=None):
-    write_series(folder / "data", series_labels() if volumes is None else volumes)
-    (folder / "config.yaml").write_text(CONFIG)
-    shutil.copytree(SRC, folder / "src", ignore=shutil.ignore_patterns("__pycache__"))
-    return folder
-
-
-@pytest.fixture(scope="module")
-def finished(tmp_path_factory):
-    folder = _prepare(tmp_path_factory.mktemp("wf"))
-    snakemake(folder, src=folder / "src")
-    return folder
+@pytest.fixture
+def finished(finished_workflow):
+    return finished_workflow
 
 
 def _copy(finished, tmp_path):
@@ -79,32 +67,17 @@ def test_changed_input_reruns_only_its_step(finished, tmp_path):
     changed = series_labels()[1]
     changed[changed == 2] = 3
     tifffile.imwrite(wf / "data" / "step_001.tif", changed)
-    jobs = planned_jobs(snakemake(wf, "-n", src=wf / "src").stdout)
-    # the step's own jobs, the two increments that touch it, and the aggregates
-    assert jobs == {("ingest", "step_001"), ("summarise", "step_001"), ("measure", "step_001"),
-                    ("track", "step_000>step_001"), ("track", "step_001>step_002"),
-                    ("states", None), ("angles", None), ("history", None),
-                    ("all", None)}
+    jobs = planned_job_wildcards(snakemake(wf, "-n", src=wf / "src").stdout)
+    assert jobs == (step_jobs("tiny", "step_001") | increment_jobs("tiny", "step_000", "step_001")
+                    | increment_jobs("tiny", "step_001", "step_002") | aggregate_jobs("tiny"))
 
 
 def test_per_step_setting_reruns_only_that_step(finished, tmp_path):
     wf = _copy(finished, tmp_path)
     (wf / "config.yaml").write_text(CONFIG + "    steps:\n      step_002:\n        chunks: 8\n")
-    jobs = planned_jobs(snakemake(wf, "-n", src=wf / "src").stdout)
-    assert jobs == {("ingest", "step_002"), ("summarise", "step_002"), ("measure", "step_002"),
-                    ("track", "step_001>step_002"), ("states", None), ("angles", None), ("history", None),
-                    ("all", None)}
-
-
-def test_appended_scan_processes_only_the_new_step(finished, tmp_path):
-    wf = _copy(finished, tmp_path)
-    extra = series_labels(n_steps=4)[3]
-    write_series(wf / "data", [extra], start=3)
-    jobs = planned_jobs(snakemake(wf, "-n", src=wf / "src").stdout)
-    # the new step's jobs, its increment and the aggregates
-    assert jobs == {("ingest", "step_003"), ("summarise", "step_003"), ("measure", "step_003"),
-                    ("track", "step_002>step_003"), ("states", None), ("angles", None),
-                    ("history", None), ("all", None)}
+    jobs = planned_job_wildcards(snakemake(wf, "-n", src=wf / "src").stdout)
+    assert jobs == (step_jobs("tiny", "step_002") | increment_jobs("tiny", "step_001", "step_002")
+                    | aggregate_jobs("tiny"))
 
 
 def test_code_change_reruns_every_rule(finished, tmp_path):
@@ -150,23 +123,3 @@ def test_bad_label_file_fails_its_job_with_a_one_line_log(tmp_path):
     assert not (tmp_path / "results/tiny/steps/step_001.zarr").exists()
     assert (tmp_path / "results/tiny/steps/step_000.zarr").exists()
     assert not list((tmp_path / "results/tiny/steps").glob(".*tmp*"))
-
-
-def test_interrupted_run_completes_with_identical_tables(finished, tmp_path):
-    wf = _prepare(tmp_path / "killed")
-    cmd = [sys.executable, "-m", "snakemake", "--snakefile", str(REPO / "Snakefile"),
-           "--directory", str(wf), "--configfile", str(wf / "config.yaml"), "--cores", "1"]
-    proc = subprocess.Popen(cmd, env=subprocess_env(wf / "src"), stdout=subprocess.DEVNULL,
-                            stderr=subprocess.DEVNULL, start_new_session=True)
-    steps = wf / "results" / "tiny" / "steps"
-    deadline = time.time() + 120
-    while time.time() < deadline and not (steps.exists() and any(steps.glob("*.zarr"))):
-        time.sleep(0.05)
-    os.killpg(proc.pid, signal.SIGTERM)  # mid-run: later steps not yet ingested
-    proc.wait(timeout=60)
-    assert not (wf / "results" / "tiny" / "states.csv").exists()
-    snakemake(wf, "--rerun-incomplete", src=wf / "src")
-    for name in ("states.csv", "summaries/step_000.csv", "summaries/step_002.csv"):
-        a = (wf / "results" / "tiny" / name).read_bytes()
-        b = (finished / "results" / "tiny" / name).read_bytes()
-        assert a == b, name

@@ -26,6 +26,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from ._atomic import atomic_write_bytes
 from ._errors import WetpathError
 
 __all__ = [

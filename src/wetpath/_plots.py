@@ -28,6 +28,7 @@ from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
 from matplotlib.ticker import MaxNLocator
 
+from ._atomic import temporary_sibling
 from ._errors import WetpathError
 
 __all__ = [
@@ -61,8 +62,14 @@ def _save(fig: Figure, out_stem: str | os.PathLike) -> list[Path]:
     stem = Path(out_stem)
     stem.parent.mkdir(parents=True, exist_ok=True)
     paths = [stem.with_name(stem.name + ".png"), stem.with_name(stem.name + ".svg")]
-    fig.savefig(paths[0], dpi=130)
-    fig.savefig(paths[1], metadata={"Date": None})
+    # temporary name + rename: a figure killed mid-write never sits under its final name
+    for path, kwargs in zip(paths, ({"dpi": 130}, {"metadata": {"Date": None}}), strict=True):
+        tmp = temporary_sibling(path)
+        try:
+            fig.savefig(tmp, format=path.suffix[1:], **kwargs)
+            os.replace(tmp, path)
+        finally:
+            tmp.unlink(missing_ok=True)
     return paths
 
 

@@ -39,6 +39,7 @@ class Volume:
         self.path, self.shape = path, tuple(int(n) for n in shape)
         self.dtype = np.dtype(dtype).newbyteorder("=")  # what read() returns
         self._reader, self._closer = reader, closer
+        self.step = _STEP  # named in errors; read_volume sets the caller's step
 
     ndim = 3
 
@@ -49,10 +50,16 @@ class Volume:
     def read(self, z0: int = 0, z1: int | None = None) -> np.ndarray:
         """Planes ``z0:z1`` as an in-memory array in native byte order."""
         z1 = self.shape[0] if z1 is None else min(z1, self.shape[0])
-        out = np.asarray(self._reader(z0, z1))
+        try:
+            out = np.asarray(self._reader(z0, z1))
+        except WetpathError:
+            raise
+        except Exception as exc:  # e.g. a file truncated after its header: one line, the file
+            raise WetpathError(f"cannot read planes {z0}:{z1}: {type(exc).__name__}: {exc}",
+                               step=self.step, path=self.path) from exc
         if out.shape != (z1 - z0, *self.shape[1:]):
             raise WetpathError(f"planes {z0}:{z1} have shape {out.shape}, expected "
-                               f"{(z1 - z0, *self.shape[1:])}", step=_STEP, path=self.path)
+                               f"{(z1 - z0, *self.shape[1:])}", step=self.step, path=self.path)
         return out.astype(out.dtype.newbyteorder("="), copy=False)
 
     def __getitem__(self, key):
@@ -159,6 +166,7 @@ def read_volume(source: str | os.PathLike, *, format: str | None = None, dtype=N
     if len(vol.shape) != 3 or min(vol.shape) < 1:
         vol.close()
         raise WetpathError(f"expected a 3D volume, got shape {vol.shape}", step=step, path=path)
+    vol.step = step
     return vol
 
 

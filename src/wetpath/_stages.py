@@ -8,6 +8,7 @@ angles in degrees through the wetting phase; see ``docs/tables.md``.
 
 from __future__ import annotations
 
+import json
 import os
 from collections.abc import Mapping, Sequence
 from pathlib import Path
@@ -15,7 +16,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ._atomic import atomic_directory, atomic_write_table
+from ._atomic import atomic_directory, atomic_write_table, atomic_write_text
 from ._errors import WetpathError
 
 __all__ = ["label_step", "measure_step", "track_step", "increment_step", "collect_angles",
@@ -31,6 +32,26 @@ def _voxel(opened, where: str) -> float:
         raise WetpathError(f"anisotropic voxel size {tuple(v)} µm: resample to cubic voxels first",
                            step=where, path=opened.path)
     return float(v[0])
+
+
+def _read_csv(path: str | os.PathLike, where: str, **kwargs) -> pd.DataFrame:
+    """Read a table written by an earlier stage; a missing or unreadable file is one line."""
+    if not Path(path).is_file():
+        raise WetpathError("input table does not exist", step=where, path=path)
+    try:
+        return pd.read_csv(path, **kwargs)
+    except Exception as exc:
+        raise WetpathError(f"cannot read table ({type(exc).__name__}: {exc})", step=where,
+                           path=path) from exc
+
+
+def _code_columns(stage: str, settings: Mapping | None = None) -> dict:
+    """Provenance columns of a per-step or per-increment row: package version, hash of the package
+    sources and ``<stage>_settings_sha256``, the hash of the stage's settings."""
+    from ._provenance import code_hash, config_hash, package_version
+
+    return {"wetpath_version": package_version(), "code_sha256": code_hash(),
+            f"{stage}_settings_sha256": config_hash(dict(settings or {}))}
 
 
 def label_step(store: str | os.PathLike, out_store: str | os.PathLike, *, connectivity: int = 26,
@@ -61,6 +82,8 @@ def open_clusters(path: str | os.PathLike):
     """The cluster label array of a store written by :func:`label_step`."""
     import zarr
 
+    if not Path(path).is_dir():
+        raise WetpathError("cluster label store does not exist", step="open", path=path)
     try:
         return zarr.open_group(str(path), mode="r")["clusters"]
     except Exception as exc:
@@ -112,6 +135,8 @@ def measure_step(store: str | os.PathLike, clusters_store: str | os.PathLike,
     topo = topological_from_clusters(table)
     topo["topo_flag"] = topo.pop("flag")
     row = {"step": step, "voxel_size_um": h, **_scalars(state), **_scalars(topo)}
+    provenance = _code_columns("measure", {"sigma": sigma, "connectivity": connectivity,
+                                           "perturb": perturb, "geometric": geometric})
     paths = measure_paths(out_folder, step)
     per_cluster = topo["clusters"] if len(topo["clusters"]) else table
     if geometric:
@@ -142,7 +167,7 @@ def measure_step(store: str | os.PathLike, clusters_store: str | os.PathLike,
     atomic_write_table(pd.DataFrame(perturbed), paths["perturbed"])
     atomic_write_table(state["blocks"], paths["blocks"])
     atomic_write_table(per_cluster, paths["clusters"])
-    atomic_write_table(pd.DataFrame([row]), paths["state"])
+    atomic_write_table(pd.DataFrame([{**row, **provenance}]), paths["state"])
     return paths
 
 
@@ -151,12 +176,13 @@ def _read_state(folder: str | os.PathLike, step: str) -> tuple[dict, list[dict],
     for p in paths.values():
         if not p.is_file():
             raise WetpathError("measure output is missing", step="increment", path=p)
-    state = pd.read_csv(paths["state"], dtype={"step": str}).iloc[0].to_dict()
-    state["blocks"] = pd.read_csv(paths["blocks"])
-    pert = pd.read_csv(paths["perturbed"]) if paths["perturbed"].stat().st_size > 1 else None
+    state = _read_csv(paths["state"], "increment", dtype={"step": str}).iloc[0].to_dict()
+    state["blocks"] = _read_csv(paths["blocks"], "increment")
+    pert = (_read_csv(paths["perturbed"], "increment") if paths["perturbed"].stat().st_size > 1
+            else None)
     perturbed = [] if pert is None or len(pert) == 0 else [
         {**r, "blocks": None} for r in pert.to_dict("records")]
-    return state, perturbed, pd.read_csv(paths["clusters"])
+    return state, perturbed, _read_csv(paths["clusters"], "increment")
 
 
 def track_step(clusters_a: str | os.PathLike, clusters_b: str | os.PathLike,
@@ -187,14 +213,15 @@ def increment_step(measures: str | os.PathLike, step_from: str, step_to: str,
     before, pb, clusters_before = _read_state(measures, step_from)
     after, pa, clusters_after = _read_state(measures, step_to)
     h = float(before["voxel_size_um"])
-    overlaps = pd.read_csv(overlaps_csv)
-    events = pd.read_csv(events_csv, dtype={"parents": str, "children": str}).fillna(
+    overlaps = _read_csv(overlaps_csv, "increment")
+    events = _read_csv(events_csv, "increment", dtype={"parents": str, "children": str}).fillna(
         {"parents": "", "children": ""})
     result = energy_balance_angle(before, after, before_perturbed=pb or None,
                                   after_perturbed=pa or None, **settings)
     row = {"step_from": step_from, "step_to": step_to,
            **{k: v for k, v in result.items() if np.isscalar(v) or v is None}}
     row.update(increment_summary(overlaps, events, h))
+    row.update(_code_columns("energy", settings))
     families = family_energy_angles(events, clusters_before, clusters_after)
     families.insert(0, "step_to", step_to)
     families.insert(0, "step_from", step_from)
@@ -230,13 +257,13 @@ def collect_angles(states_csv: str | os.PathLike, out_folder: str | os.PathLike,
     from ._tracking import lineages
 
     out = Path(out_folder)
-    states = pd.read_csv(states_csv, dtype={"step": str})
+    states = _read_csv(states_csv, "angles", dtype={"step": str})
     steps = list(states["step"])
     order = {s: i for i, s in enumerate(steps)}
     times = dict(zip(states["step"], states["time_s"], strict=True))
 
     def concat(files, columns):
-        parts = [pd.read_csv(f, dtype={"step_from": str, "step_to": str}) for f in files]
+        parts = [_read_csv(f, "angles", dtype={"step_from": str, "step_to": str}) for f in files]
         parts = [p for p in parts if len(p)]
         return pd.concat(parts, ignore_index=True) if parts else pd.DataFrame(columns=columns)
 
@@ -246,7 +273,7 @@ def collect_angles(states_csv: str | os.PathLike, out_folder: str | os.PathLike,
     families = concat(family_csvs, ["step_from", "step_to"])
     clusters = []
     for step, f in zip(steps, cluster_csvs, strict=True):
-        table = pd.read_csv(f)
+        table = _read_csv(f, "angles")
         table = table[[c for c in ANGLE_CLUSTER_COLUMNS if c in table.columns]]
         table.insert(0, "step", step)
         clusters.append(table)
@@ -259,7 +286,7 @@ def collect_angles(states_csv: str | os.PathLike, out_folder: str | os.PathLike,
     atomic_write_table(families, paths["families"])
     atomic_write_table(pd.concat(clusters, ignore_index=True) if clusters else pd.DataFrame(
         columns=["step", "cluster"]), paths["clusters"])
-    lin = lineages([pd.read_csv(f) for f in overlap_csvs])
+    lin = lineages([_read_csv(f, "angles") for f in overlap_csvs])
     lin.insert(0, "step_name", [steps[i] for i in lin["step"]])
     atomic_write_table(lin, paths["lineages"])
     return paths
@@ -276,12 +303,16 @@ def history_series(states_csv: str | os.PathLike, increments_csv: str | os.PathL
     from ._store import open_step
 
     out = Path(out_folder)
-    states = pd.read_csv(states_csv, dtype={"step": str})
-    increments = pd.read_csv(increments_csv, dtype={"step_from": str, "step_to": str})
+    states = _read_csv(states_csv, "history", dtype={"step": str})
+    increments = _read_csv(increments_csv, "history", dtype={"step_from": str, "step_to": str})
     history = build_history(states, increments, sigma_n_per_m=sigma_n_per_m,
                             static_tol=static_tol)
     branches = branch_summary(history)
-    write_history_tables(out, history, branches)
+    provenance = _provenance(states, config)
+    stamp = {k: provenance[k] for k in ("wetpath_version", "code_sha256", "config_sha256")}
+    write_history_tables(out, history.assign(**stamp), branches.assign(**stamp))
+    atomic_write_text(out / "provenance.json",
+                      json.dumps(provenance, indent=1, sort_keys=True, default=str) + "\n")
     picked = _first_mid_last(list(stores))
     slices, axes = mid_plane_slices([(Path(p).stem, np.asarray(open_step(p).labels[...]))
                                      for p in picked]) if picked else (None, ("y", "x"))
@@ -291,7 +322,6 @@ def history_series(states_csv: str | os.PathLike, increments_csv: str | os.PathL
         if n:
             warnings.append(f"{n} cluster(s) over all states rise too little above the solid to "
                             "be resolved; they are left out of the topological angle")
-    provenance = _provenance(states, config)
     return write_report(out / "report.html", history=history, branches=branches, states=states,
                         increments=increments, config=dict(config or {}),
                         provenance=provenance, warnings=warnings, slices=slices,
@@ -305,6 +335,8 @@ def _first_mid_last(items: list) -> list:
 
 
 def _provenance(states: pd.DataFrame, config: Mapping | None) -> dict:
+    """Version, source hash, hash of the series and analysis settings, and every input's size and
+    SHA-256 (from the step stores' records, via the states table)."""
     from ._provenance import code_hash, config_hash, package_version
 
     cols = [c for c in ("step", "source_file", "source_bytes", "source_sha256") if c in states]

@@ -74,18 +74,23 @@ def summarise_labels(labels, *, chunks=None) -> dict:
             "flag_no_pore_space": pore == 0}
 
 
-def summarise_step(store: str | os.PathLike, *, chunks=None, step: str | None = None
-                   ) -> pd.DataFrame:
+def summarise_step(store: str | os.PathLike, *, chunks=None, step: str | None = None,
+                   same_shape_as: str | os.PathLike | None = None) -> pd.DataFrame:
     """One-row summary table of a step store, with its provenance.
 
     Columns: :data:`SUMMARY_COLUMNS` plus ``source_file, source_bytes, source_sha256,
     settings_sha256, wetpath_version, code_sha256`` (from the store's metadata). Volumes in µm³.
+
+    ``same_shape_as`` names the step store of the series' first step: a volume of another shape
+    fails here, before any per-step analysis runs, naming both source files.
     """
     from ._store import open_step
 
     opened = open_step(store)
     labels = opened.labels
     row = {"step": step or opened.attrs.get("step", os.path.basename(str(store)))}
+    if same_shape_as is not None:
+        _check_same_shape(opened, open_step(same_shape_as), row["step"])
     row.update(summarise_labels(labels, chunks=chunks))
     voxel = np.broadcast_to(np.asarray(opened.voxel_size_um, float), 3)
     row.update({"shape_z": labels.shape[0], "shape_y": labels.shape[1],
@@ -102,6 +107,19 @@ def summarise_step(store: str | os.PathLike, *, chunks=None, step: str | None = 
                 "wetpath_version": opened.attrs.get("wetpath_version"),
                 "code_sha256": opened.attrs.get("code_sha256")})
     return pd.DataFrame([row])
+
+
+def _source(opened) -> str:
+    src = (opened.attrs.get("inputs") or {}).get("source") or {}
+    return str(src.get("file") or opened.path)
+
+
+def _check_same_shape(opened, first, step: str) -> None:
+    shape, ref = tuple(opened.labels.shape), tuple(first.labels.shape)
+    if shape != ref:
+        raise WetpathError(f"volumes of different shapes within one series: shape {shape} but "
+                           f"the first step {first.attrs.get('step')} ({_source(first)}) has "
+                           f"{ref}", step=f"summarise {step}", path=_source(opened))
 
 
 def join_states(times: pd.DataFrame, tables, *, series: str | None = None) -> pd.DataFrame:

@@ -116,6 +116,8 @@ def _add_summarise(p):
     p.add_argument("out_csv", type=Path, help="one-row summary table to write")
     p.add_argument("--step", help="step name (default: from the store)")
     p.add_argument("--chunks", type=int, help="block edge for counting (default: store chunks)")
+    p.add_argument("--same-shape-as", type=Path,
+                   help="step store of the series' first step: fail if the shapes differ")
 
 
 @subcommand("summarise", _add_summarise,
@@ -124,8 +126,8 @@ def _cmd_summarise(args) -> int:
     from ._atomic import atomic_write_table
     from ._summary import summarise_step
 
-    atomic_write_table(summarise_step(args.store, chunks=args.chunks, step=args.step),
-                       args.out_csv)
+    atomic_write_table(summarise_step(args.store, chunks=args.chunks, step=args.step,
+                                      same_shape_as=args.same_shape_as), args.out_csv)
     return 0
 
 

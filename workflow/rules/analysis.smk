@@ -50,6 +50,9 @@ rule measure:
     geometric angles of one step."""
     input:
         store=rules.ingest.output.store,
+        # the step's summary checked the volume's shape against the series' first step: analysis
+        # of a mis-shaped volume never starts (ancient: the summary's time does not rerun this)
+        summary=ancient(rules.summarise.output.table),
     output:
         clusters=directory(f"{RESULTS}/{{series}}/clusters/{{step}}.zarr"),
         state=f"{RESULTS}/{{series}}/measures/{{step}}.csv",
@@ -144,6 +147,7 @@ rule history:
         parquet=f"{RESULTS}/{{series}}/history.parquet",
         branches=f"{RESULTS}/{{series}}/branches.csv",
         report=f"{RESULTS}/{{series}}/report.html",
+        provenance=f"{RESULTS}/{{series}}/provenance.json",
     log:
         f"{RESULTS}/{{series}}/logs/history.log",
     params:

@@ -10,6 +10,8 @@ rule ingest:
     params:
         code=CODE,
         settings=ingest_settings,
+    # validation first: every step is ingested and checked before any analysis job starts
+    priority: 1
     threads: 1
     resources:
         mem_mb=ingest_mem_mb,
