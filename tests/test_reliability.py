@@ -269,7 +269,7 @@ def edge_run(tmp_path_factory):
 def test_workflow_writes_nan_and_flags_for_undefined_results(edge_run):
     res = edge_run[0] / RESULTS
     s2 = pd.read_csv(res / "measures/step_002.csv").iloc[0]
-    assert bool(s2["flag_no_nonwetting"]) and s2["flag"] == "no_nonwetting_phase"
+    assert bool(s2["flag_no_nonwetting"]) and s2["topo_flag"] == "no_nonwetting_phase"
     assert s2["area_nw"] == 0 and s2["saturation_w"] == 1.0
     for key in ("curvature_nw", "theta_topo_deg", "theta_geom_median_deg"):
         assert np.isnan(s2[key]), key

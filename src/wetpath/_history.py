@@ -503,7 +503,7 @@ def write_history_tables(out_dir: str | os.PathLike, history: pd.DataFrame,
     """
     import io
 
-    from ._atomic import atomic_write_bytes, atomic_write_table
+    from ._atomic import atomic_write_table
 
     out = Path(out_dir)
     buf = io.BytesIO()
