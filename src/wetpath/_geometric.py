@@ -70,6 +70,13 @@ _COLUMNS = ["cluster", "z", "y", "x", "theta_deg", "n_fit", "area_nw_vox2",
             "flag_no_contact_line", "flag_unresolved", "flag_fit_failed", "flag_small_interface"]
 
 
+def _smooth(verts: np.ndarray, faces: np.ndarray) -> np.ndarray:
+    """Taubin λ|μ smoothing (Taubin 1995) by the compiled kernel of :mod:`wetpath._mesh`; oracle:
+    ``_mesh.taubin_smooth`` (equal up to the order of floating-point summation)."""
+    return _taubin_kernel(verts.astype(np.float64), _edges(faces, len(verts))[0],
+                          TAUBIN_ITERATIONS, TAUBIN_LAMBDA, TAUBIN_MU)
+
+
 def _vertex_normals(verts: np.ndarray, faces: np.ndarray) -> np.ndarray:
     """Area-weighted vertex normals, unit length (orientation from the face winding)."""
     fn = np.cross(verts[faces[:, 1]] - verts[faces[:, 0]], verts[faces[:, 2]] - verts[faces[:, 0]])
@@ -99,9 +106,7 @@ def _mesh(field: np.ndarray, toward_high: bool, mask: np.ndarray | None = None
 
     verts, faces, _, _ = marching_cubes(field, 0.5, allow_degenerate=False, mask=mask)
     faces = faces.astype(np.int64)
-    # Taubin λ|μ smoothing (Taubin 1995), compiled; oracle: ``_mesh.taubin_smooth``
-    verts = _taubin_kernel(verts.astype(np.float64), _edges(faces, len(verts))[0],
-                           TAUBIN_ITERATIONS, TAUBIN_LAMBDA, TAUBIN_MU)
+    verts = _smooth(verts, faces)
     normals = _vertex_normals(verts, faces)
     grad = _gradient_at(field, verts)
     sign = 1.0 if np.sum(normals * grad) >= 0 else -1.0
