@@ -351,7 +351,9 @@ def _cluster_angles(lab, cl, k, box, sigma, spacing, fit_radius, band) -> dict:
     if not s_ind.any() or gs.max() < 0.5 or gs.min() > 0.5:
         return _no_points(_nw_area(nv, nf, None))
     # distance of the n-mesh vertices from the solid boundary (voxel centres are 1/2 off it)
-    d_solid = (_distance_to(s_ind) - 0.5).astype(np.float32)
+    d_solid = _distance_to(s_ind)
+    d_solid -= 0.5                       # in place: no second full-box float64 temporary
+    d_solid = d_solid.astype(np.float32)
     ds_n = _sample(d_solid, nv)
     area_nw = _nw_area(nv, nf, ds_n)
     # ν_s: down the solid indicator, into the pore; meshed only within the blur's reach (4σ) of
@@ -385,7 +387,8 @@ def _distance_to(feature: np.ndarray) -> np.ndarray:
     """Exact Euclidean distance (voxels) of every voxel to the nearest ``True`` voxel, by the
     compiled separable transform of :mod:`wetpath._mesh`; equals
     ``ndimage.distance_transform_edt(~feature)`` (the test oracle)."""
-    return np.sqrt(squared_distance(feature, float(np.sqrt(np.sum(np.square(feature.shape))))))
+    d = squared_distance(feature, float(np.sqrt(np.sum(np.square(feature.shape)))))
+    return np.sqrt(d, out=d)
 
 
 def _sample_normals(verts, normals, pts):
