@@ -19,7 +19,8 @@ intersected:
    quadric's normal and the plane's normal. Points whose fitted patch is too thin to extrapolate
    (an interface that barely rises above the rounded crease) get NaN and ``flag_unresolved``.
 
-The fits are batched over all points of a cluster (normal equations solved with ``numpy.linalg``).
+The fits run in a compiled kernel, one 6×6 normal-equation system per point, in parallel; the
+batched numpy version is kept as the test oracle. Clusters run on ``threads`` worker threads.
 
 References
 ----------
