@@ -19,7 +19,8 @@ intersected:
    quadric's normal and the plane's normal. Points whose fitted patch is too thin to extrapolate
    (an interface that barely rises above the rounded crease) get NaN and ``flag_unresolved``.
 
-The fits are batched over all points of a cluster (normal equations solved with ``numpy.linalg``).
+The fits run in a compiled kernel, one 6×6 normal-equation system per point, in parallel; the
+batched numpy version is kept as the test oracle. Clusters run on ``threads`` worker threads.
 
 References
 ----------
@@ -36,14 +37,18 @@ from __future__ import annotations
 
 import math
 import warnings
+from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 import pandas as pd
-from scipy import ndimage, sparse
+from numba import njit, prange
+from scipy import ndimage
 from scipy.spatial import cKDTree
 
 from ._codes import NONWETTING, SOLID, WETTING, PhaseCodes, to_canonical
 from ._errors import WetpathError
+from ._lattice import resolve_threads
+from ._mesh import TAUBIN_ITERATIONS, TAUBIN_LAMBDA, TAUBIN_MU, _edges, _taubin_kernel, squared_distance
 
 __all__ = ["geometric_angles", "summarise_geometric"]
 
@@ -66,29 +71,21 @@ _COLUMNS = ["cluster", "z", "y", "x", "theta_deg", "n_fit", "area_nw_vox2",
             "flag_no_contact_line", "flag_unresolved", "flag_fit_failed", "flag_small_interface"]
 
 
-def _taubin(verts: np.ndarray, faces: np.ndarray, iterations: int = 10, lam: float = 0.5,
-            mu: float = -0.53) -> np.ndarray:
-    """Taubin λ|μ smoothing with the umbrella operator (Taubin 1995): low-pass, no shrinkage."""
-    n = len(verts)
-    i = faces[:, [0, 1, 2, 1, 2, 0]].ravel()
-    j = faces[:, [1, 2, 0, 0, 1, 2]].ravel()
-    adj = sparse.csr_matrix((np.ones(i.size), (i, j)), shape=(n, n))
-    adj.data[:] = 1.0  # duplicate edges count once
-    deg = np.asarray(adj.sum(axis=1)).ravel()
-    avg = sparse.diags(1.0 / np.maximum(deg, 1)) @ adj
-    x = verts.astype(float).copy()
-    for _ in range(iterations):
-        x += lam * (avg @ x - x)
-        x += mu * (avg @ x - x)
-    return x
+def _smooth(verts: np.ndarray, faces: np.ndarray) -> np.ndarray:
+    """Taubin λ|μ smoothing (Taubin 1995) by the compiled kernel of :mod:`wetpath._mesh`; oracle:
+    ``_mesh.taubin_smooth`` (equal up to the order of floating-point summation)."""
+    return _taubin_kernel(verts.astype(np.float64), _edges(faces, len(verts))[0],
+                          TAUBIN_ITERATIONS, TAUBIN_LAMBDA, TAUBIN_MU)
 
 
 def _vertex_normals(verts: np.ndarray, faces: np.ndarray) -> np.ndarray:
     """Area-weighted vertex normals, unit length (orientation from the face winding)."""
     fn = np.cross(verts[faces[:, 1]] - verts[faces[:, 0]], verts[faces[:, 2]] - verts[faces[:, 0]])
-    vn = np.zeros_like(verts)
-    for k in range(3):
-        np.add.at(vn, faces[:, k], fn)
+    # one bincount per axis over corners 0, 1, 2 in turn: the same additions in the same order as
+    # ``np.add.at`` corner by corner, without its per-element overhead
+    corners = faces.T.ravel()
+    vn = np.stack([np.bincount(corners, np.tile(fn[:, c], 3), minlength=len(verts))
+                   for c in range(3)], axis=1)
     norm = np.linalg.norm(vn, axis=1, keepdims=True)
     return vn / np.where(norm > 0, norm, 1.0)
 
@@ -110,7 +107,7 @@ def _mesh(field: np.ndarray, toward_high: bool, mask: np.ndarray | None = None
 
     verts, faces, _, _ = marching_cubes(field, 0.5, allow_degenerate=False, mask=mask)
     faces = faces.astype(np.int64)
-    verts = _taubin(verts, faces)
+    verts = _smooth(verts, faces)
     normals = _vertex_normals(verts, faces)
     grad = _gradient_at(field, verts)
     sign = 1.0 if np.sum(normals * grad) >= 0 else -1.0
@@ -163,19 +160,38 @@ def _solid_planes(points, solid_tree, solid_verts, solid_grad_out, radius):
     return centre, normal, cnt >= 6
 
 
-def _fit_quadrics(points, band_verts, band_normals, band_dist, fit_radius, slope_scale):
-    """Quadric height fields h(u,v) = β0 + β1 u + β2 v + β3 u² + β4 uv + β5 v² in a local frame at
-    each point, fitted jointly to positions and normals (batched normal equations).
-
-    Returns the coefficients, the frames, the number of vertices used and the span of their
-    distances from the solid (voxels)."""
-    band_tree = cKDTree(band_verts)
+def _fit_neighbours(points, band_verts, fit_radius):
+    """Indices of the (at most ``_K_FIT``) n–w vertices within ``fit_radius`` of each point and
+    their validity mask (invalid slots hold index 0)."""
     k = min(_K_FIT, len(band_verts))
-    dist, idx = band_tree.query(points, k=k, distance_upper_bound=fit_radius)
+    dist, idx = cKDTree(band_verts).query(points, k=k, distance_upper_bound=fit_radius)
     if k == 1:
         dist, idx = dist[:, None], idx[:, None]
     valid = np.isfinite(dist)
-    idx = np.where(valid, idx, 0)
+    return np.where(valid, idx, 0), valid
+
+
+def _fit_quadrics(points, band_verts, band_normals, band_dist, fit_radius, slope_scale):
+    """Quadric height fields h(u,v) = β0 + β1 u + β2 v + β3 u² + β4 uv + β5 v² in a local frame at
+    each point, fitted jointly to positions and normals (normal equations per point, compiled).
+
+    Returns the coefficients, the frames, the number of vertices used and the span of their
+    distances from the solid (voxels). Equals :func:`_fit_quadrics_reference` up to the order of
+    floating-point summation."""
+    idx, valid = _fit_neighbours(points, band_verts, fit_radius)
+    beta, e1, e2, e3, count, lo, hi = _fit_kernel(
+        np.ascontiguousarray(points, np.float64), np.ascontiguousarray(idx, np.int64), valid,
+        np.ascontiguousarray(band_verts, np.float64),
+        np.ascontiguousarray(band_normals, np.float64),
+        np.ascontiguousarray(band_dist, np.float64), float(slope_scale))
+    # lo and hi are elements of band_dist: the span is taken in its dtype, as in the reference
+    dt = np.asarray(band_dist).dtype
+    return beta, (e1, e2, e3), count, hi.astype(dt) - lo.astype(dt)
+
+
+def _fit_quadrics_reference(points, band_verts, band_normals, band_dist, fit_radius, slope_scale):
+    """Plain numpy oracle of :func:`_fit_quadrics`: batched (P, 3K, 6) design matrices."""
+    idx, valid = _fit_neighbours(points, band_verts, fit_radius)
     w = valid.astype(float)
     x, nv = band_verts[idx], band_normals[idx]
     e3 = (nv * w[..., None]).sum(axis=1)
@@ -200,6 +216,82 @@ def _fit_quadrics(points, band_verts, band_normals, band_dist, fit_radius, slope
     span = (np.where(valid, dist_fit, -np.inf).max(axis=1)
             - np.where(valid, dist_fit, np.inf).min(axis=1))
     return beta, (e1, e2, e3), w.sum(axis=1).astype(int), span
+
+
+@njit(cache=True, nogil=True, parallel=True, error_model="numpy")
+def _fit_kernel(points, idx, valid, verts, normals, dist, slope_scale):  # pragma: no cover
+    """Compiled :func:`_fit_quadrics_reference` after the neighbour query: per point, the frame,
+    the 6×6 normal equations accumulated vertex by vertex (no (P, 3K, 6) design arrays), their
+    solution, the vertex count and the least and greatest distance from the solid."""
+    p_n, k_n = idx.shape
+    beta = np.zeros((p_n, 6))
+    e1 = np.zeros((p_n, 3))
+    e2 = np.zeros((p_n, 3))
+    e3 = np.zeros((p_n, 3))
+    count = np.zeros(p_n, np.int64)
+    lo_out = np.full(p_n, np.inf)
+    hi_out = np.full(p_n, -np.inf)
+    s2 = slope_scale * slope_scale
+    for p in prange(p_n):
+        a = np.zeros(3)
+        for k in range(k_n):
+            if valid[p, k]:
+                for c in range(3):
+                    a[c] += normals[idx[p, k], c]
+        nrm = max(math.sqrt(a[0] * a[0] + a[1] * a[1] + a[2] * a[2]), 1e-12)
+        for c in range(3):
+            e3[p, c] = a[c] / nrm
+        if abs(e3[p, 0]) < 0.9:          # helper (1, 0, 0): e1 = e3 × x̂
+            b0, b1, b2 = 0.0, e3[p, 2], -e3[p, 1]
+        else:                            # helper (0, 1, 0): e1 = e3 × ŷ
+            b0, b1, b2 = -e3[p, 2], 0.0, e3[p, 0]
+        nb = math.sqrt(b0 * b0 + b1 * b1 + b2 * b2)
+        e1[p, 0], e1[p, 1], e1[p, 2] = b0 / nb, b1 / nb, b2 / nb
+        e2[p, 0] = e3[p, 1] * e1[p, 2] - e3[p, 2] * e1[p, 1]
+        e2[p, 1] = e3[p, 2] * e1[p, 0] - e3[p, 0] * e1[p, 2]
+        e2[p, 2] = e3[p, 0] * e1[p, 1] - e3[p, 1] * e1[p, 0]
+        m = np.zeros((6, 6))
+        r = np.zeros(6)
+        row = np.zeros(6)
+        lo, hi, n = np.inf, -np.inf, 0
+        for k in range(k_n):
+            if not valid[p, k]:
+                continue
+            i = idx[p, k]
+            n += 1
+            lo = min(lo, dist[i])
+            hi = max(hi, dist[i])
+            u = v = h = nu = nv = nh = 0.0
+            for c in range(3):
+                q = verts[i, c] - points[p, c]
+                u += q * e1[p, c]
+                v += q * e2[p, c]
+                h += q * e3[p, c]
+                nu += normals[i, c] * e1[p, c]
+                nv += normals[i, c] * e2[p, c]
+                nh += normals[i, c] * e3[p, c]
+            row[0], row[1], row[2], row[3], row[4], row[5] = 1.0, u, v, u * u, u * v, v * v
+            for a_ in range(6):
+                r[a_] += row[a_] * h
+                for b_ in range(6):
+                    m[a_, b_] += row[a_] * row[b_]
+            if nh > 0.3:
+                row[0], row[1], row[2], row[3], row[4], row[5] = 0.0, 1.0, 0.0, 2 * u, v, 0.0
+                for a_ in range(6):
+                    r[a_] += s2 * row[a_] * (-nu / nh)
+                    for b_ in range(6):
+                        m[a_, b_] += s2 * row[a_] * row[b_]
+                row[0], row[1], row[2], row[3], row[4], row[5] = 0.0, 0.0, 1.0, 0.0, u, 2 * v
+                for a_ in range(6):
+                    r[a_] += s2 * row[a_] * (-nv / nh)
+                    for b_ in range(6):
+                        m[a_, b_] += s2 * row[a_] * row[b_]
+        for a_ in range(6):
+            m[a_, a_] += 1e-9
+        beta[p] = np.linalg.solve(m, r)
+        count[p] = n
+        lo_out[p], hi_out[p] = lo, hi
+    return beta, e1, e2, e3, count, lo_out, hi_out
 
 
 def _intersect(points, beta, frame, centre, nu_s, max_step):
@@ -260,7 +352,9 @@ def _cluster_angles(lab, cl, k, box, sigma, spacing, fit_radius, band) -> dict:
     if not s_ind.any() or gs.max() < 0.5 or gs.min() > 0.5:
         return _no_points(_nw_area(nv, nf, None))
     # distance of the n-mesh vertices from the solid boundary (voxel centres are 1/2 off it)
-    d_solid = (ndimage.distance_transform_edt(~s_ind) - 0.5).astype(np.float32)
+    d_solid = _distance_to(s_ind)
+    d_solid -= 0.5                       # in place: no second full-box float64 temporary
+    d_solid = d_solid.astype(np.float32)
     ds_n = _sample(d_solid, nv)
     area_nw = _nw_area(nv, nf, ds_n)
     # ν_s: down the solid indicator, into the pore; meshed only within the blur's reach (4σ) of
@@ -288,6 +382,14 @@ def _cluster_angles(lab, cl, k, box, sigma, spacing, fit_radius, band) -> dict:
     theta = np.where(~unresolved & plane_ok & cut_ok, np.degrees(np.arccos(cos)), np.nan)
     return {"pts": np.where(np.isfinite(theta)[:, None], where, pts), "theta": theta,
             "n_fit": count, "unresolved": unresolved, "area_nw": area_nw, "speck": False}
+
+
+def _distance_to(feature: np.ndarray) -> np.ndarray:
+    """Exact Euclidean distance (voxels) of every voxel to the nearest ``True`` voxel, by the
+    compiled separable transform of :mod:`wetpath._mesh`; equals
+    ``ndimage.distance_transform_edt(~feature)`` (the test oracle)."""
+    d = squared_distance(feature, float(np.sqrt(np.sum(np.square(feature.shape)))))
+    return np.sqrt(d, out=d)
 
 
 def _sample_normals(verts, normals, pts):
@@ -327,7 +429,8 @@ def geometric_angles(labels: np.ndarray, voxel_size: float = 1.0, *,
                      codes: PhaseCodes | dict | None = None, clusters: np.ndarray | None = None,
                      sigma: float = 1.0, spacing: float = 3.0, fit_radius: float = 10.0,
                      band: tuple[float, float] | None = None,
-                     min_interface_vox2: float = 1000.0) -> pd.DataFrame:
+                     min_interface_vox2: float = 1000.0, threads: int | None = None
+                     ) -> pd.DataFrame:
     """Contact angles at points of the contact line, from local fits of the n–w interface and the
     solid intersected with each other (AlRatrout et al. 2017).
 
@@ -354,6 +457,8 @@ def geometric_angles(labels: np.ndarray, voxel_size: float = 1.0, *,
     min_interface_vox2 : float
         Clusters whose n–w interface is smaller than this (voxel²) are flagged
         ``flag_small_interface`` and a warning is issued (Khanamiri et al. 2020: ~1000 voxel²).
+    threads : int, optional
+        Worker threads over clusters (None: all cores); the result does not depend on it.
 
     Returns
     -------
@@ -403,7 +508,15 @@ def geometric_angles(labels: np.ndarray, voxel_size: float = 1.0, *,
                                               fit_radius, band),
                               k, boxes[k], voxel_size, min_interface_vox2)
 
-    frames = [one(k) for k in boxes]
+    # largest boxes first so that the threads finish together; the table keeps cluster order
+    order = sorted(boxes, key=lambda k: -math.prod(s.stop - s.start for s in boxes[k]))
+    nthreads = resolve_threads(threads)
+    if nthreads == 1 or len(order) < 2:
+        done = {k: one(k) for k in order}
+    else:
+        with ThreadPoolExecutor(nthreads) as pool:
+            done = dict(zip(order, pool.map(one, order), strict=True))
+    frames = [done[k] for k in boxes]
     small = [bool(f["flag_small_interface"].iloc[0]) for f in frames]
     if any(small):
         warnings.warn(f"{sum(small)} cluster(s) have an n–w interface below "
