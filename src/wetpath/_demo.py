@@ -39,10 +39,10 @@ How the data are made (all computed here, from a seed):
 **Resolution.** The pore space is resolved the way the estimators need it: grains span 30–60
 voxels and the capillary radius never falls below ``_R_MIN`` = 6.5 voxels, so menisci rise well
 above the 4-voxel band next to the solid where the mesh curvature is not read (measured on the
-default series, seed 2026, size 144: drainage entry radius 7.6 voxels, drainage ends at R = 6.6,
-n–w interfaces up to 8–14 voxels from the solid). Smaller radii (finer pores, higher capillary
-pressure) would put every meniscus within ~2.5 voxels of the grains, as a coarse scan of a fine
-rock does, and leave curvature and contact angles undefined.
+default series, seed 2026, size 144: drainage entry radius 8.9 voxels, drainage ends at R = 7.4,
+n–w interfaces rise 7–12 voxels above the solid, trapped ganglia 12). Finer pores (radii of 2–4
+voxels, as in a coarse scan of a fine rock) put every meniscus within ~2.5 voxels of the grains
+and leave curvature and contact angles undefined.
 
 The rock and fluids are simulated in the whole cubic box; the field of view is the inscribed
 cylinder, so clusters leave and enter it as a real scan would show them. Everything is
@@ -85,7 +85,7 @@ SCENARIO_TEXT = (
 )
 
 VOXEL_SIZE_UM = 5.0
-DEFAULT_SIZE = 144  # voxels: the field of view then holds ~40 coarse grains
+DEFAULT_SIZE = 144  # voxels: the field of view then holds ~35 coarse grains
 INTERFACIAL_TENSION_N_PER_M = 0.036  # invented brine/oil value, of the usual order for such pairs
 THETA_RECEDING_DEG = 35.0  # contact angle (through brine) built into the drainage rule
 THETA_ADVANCING_DEG = 60.0  # contact angle (through brine) built into the imbibition rule
