@@ -84,7 +84,7 @@ SCENARIO_TEXT = (
     "generator; no real sample or measurement is behind them."
 )
 
-VOXEL_SIZE_UM = 5.0
+VOXEL_SIZE_UM = 4.0  # as in config/config.yaml (series voxel_size_um)
 DEFAULT_SIZE = 144  # voxels: the field of view then holds ~35 coarse grains
 INTERFACIAL_TENSION_N_PER_M = 0.036  # invented brine/oil value, of the usual order for such pairs
 THETA_RECEDING_DEG = 35.0  # contact angle (through brine) built into the drainage rule
