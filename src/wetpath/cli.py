@@ -44,7 +44,7 @@ def _json(text: str):
 def _add_demo(p):
     p.add_argument("out_dir", type=Path, help="folder to write the demo series into")
     p.add_argument("--seed", type=int, default=2026, help="random seed (default 2026)")
-    p.add_argument("--size", type=int, default=96, help="edge of the cubic volumes in voxels")
+    p.add_argument("--size", type=int, default=144, help="edge of the cubic volumes in voxels")
     p.add_argument("--no-grayscale", action="store_true", help="write only the labelled series")
 
 
@@ -191,7 +191,7 @@ def _cmd_run(args) -> int:
             from ._demo import write_demo_series
 
             write_demo_series(out, seed=int(demo.get("seed", 2026)),
-                              size=int(demo.get("size", 96)))
+                              size=int(demo.get("size", 144)))
             print(f"demo series written to {out}")
     extra = [a for a in args.snakemake_args if a != "--"]
     cmd = [sys.executable, "-m", "snakemake", "--snakefile", str(snakefile), "--directory",
