@@ -16,7 +16,7 @@ from wetpath._demo import demo_series
 
 @pytest.fixture(scope="module")
 def series():
-    return demo_series(seed=2026, size=80)
+    return demo_series(seed=2026, size=112)
 
 
 def test_events_include_coalescence_and_breakup(series):
