@@ -144,3 +144,9 @@ def test_submission_lines_give_job_ids():
     # the message format of snakemake-executor-plugin-slurm 2.x
     line = "Job 3 has been submitted with SLURM jobid 27 (log: /x/27.log)."
     assert compare_runs.SUBMITTED.search(line).group(1) == "27"
+
+
+def test_missing_text_in_both_runs_is_equal():
+    # a text column with empty cells in both runs (e.g. step_from on state rows of history.csv)
+    a = pd.DataFrame({"step_from": ["s0", None, "s1"]})
+    assert compare_runs.compare_frames(a, a.copy(), rtol=1e-9, atol=0) == []
