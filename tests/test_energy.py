@@ -180,12 +180,12 @@ def test_perturbed_states_widen_interval_in_quadrature():
     b_dil = {**b, "curvature_nw": b["curvature_nw"] * 1.05}
     a_dil = {**a, "curvature_nw": a["curvature_nw"] * 1.05}
     res = energy_balance_angle(b, a, before_perturbed=[b_dil], after_perturbed=[a_dil])
-    # a +5 % κ error shifts cos by ε R_κ = 0.05 · cos 60° (METHODS.md §3); the largest shift of the
-    # three pairings (b', a), (b, a'), (b', a') is the shared one
+    # a +5 % κ error shifts cos by ε R_κ = 0.05 · cos 60° (METHODS.md §3); the perturbation is
+    # shared by both states (same segmentation settings for every scan): one pair (b', a')
     p = 0.05 * 0.5
     assert res["theta_energy_lo_deg"] == pytest.approx(math.degrees(math.acos(0.5 + p)), abs=1e-9)
     assert res["theta_energy_hi_deg"] == pytest.approx(math.degrees(math.acos(0.5 - p)), abs=1e-9)
-    assert res["n_perturbed"] == 3
+    assert res["n_perturbed"] == 1
     only = energy_balance_angle(b, a)
     assert math.isnan(only["theta_energy_lo_deg"])  # no source of spread → no interval
     # a 5 % systematic κ error declared by the caller gives the same half-width

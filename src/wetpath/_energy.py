@@ -147,11 +147,15 @@ def _increment(before: Mapping, after: Mapping) -> dict:
 
 
 def _pair_perturbed(before, after, before_perturbed, after_perturbed):
-    """Every pairing of a before state with an after state, perturbed or not, except the
-    unperturbed pair: segmentation errors of the two scans may be shared or independent."""
-    bs = [before, *(before_perturbed or [])]
-    as_ = [after, *(after_perturbed or [])]
-    return [(b, a) for i, b in enumerate(bs) for j, a in enumerate(as_) if i or j]
+    """The before and after states perturbed alike (first with first, second with second): all
+    scans of a series are segmented with the same settings (METHODS.md §6), so a boundary bias is
+    shared by both states of an increment. Scan-to-scan noise is the block bootstrap's part; a
+    ±1-voxel shift of one scan alone moves ΔA_ws by a large share of A_ws and would swamp every
+    increment's interval."""
+    bp, ap = list(before_perturbed or []), list(after_perturbed or [])
+    if len(bp) != len(ap):
+        return [(b, after) for b in bp] + [(before, a) for a in ap]
+    return list(zip(bp, ap, strict=True))
 
 
 def _interval(cos, inc, blocks, pairs, n_boot, seed, kappa_rel_error):
@@ -215,10 +219,10 @@ def energy_balance_angle(before: Mapping, after: Mapping, *, large_step: float =
         Seed of the bootstrap.
     before_perturbed, after_perturbed : sequence of mapping, optional
         ``measure_state`` results of the same states with the fluid boundary moved by ±1 voxel
-        (stand-ins for segmentation error; see :func:`perturb_fluid_boundary`). Every before
-        state (unperturbed or perturbed) is paired with every after state: a shared shift of
-        both scans mostly cancels in the differences, a shift of one scan only does not, and
-        both are possible.
+        (stand-ins for segmentation error; see :func:`perturb_fluid_boundary`). The k-th
+        perturbed before state is paired with the k-th perturbed after state: every scan is
+        segmented with the same settings, so a boundary bias is shared by both states (a list
+        given for one state only is paired with the other's unperturbed state).
     static_tol : float
         |ΔS_w| at or below which the increment is called ``static``.
     mixed_tol : float
