@@ -8,9 +8,11 @@ intersected:
 
 1. per n cluster, on its bounding box (padded), the n and solid indicators are Gaussian-smoothed
    (σ voxels) and meshed by marching cubes at level 0.5 (Lorensen & Cline 1987), then
-   Taubin-smoothed (Taubin 1995);
+   Taubin-smoothed (Taubin 1995) — with ``chunks``, a box larger than a chunk is processed core by
+   core with a halo, each point and face counted by the one core that owns it, so that peak memory
+   is bounded by a chunk and not by a percolating cluster's box (the whole volume);
 2. contact-line points are where the n fraction of the pore, G*n / G*(n ∪ w), crosses 1/2 on the
-   solid mesh; they are thinned to about one per ``spacing`` voxels;
+   solid mesh; they are thinned to one per cell of a ``spacing``-voxel lattice;
 3. at each point a quadric height field h(u, v) in a local frame (normal e3 = the mean n–w normal of
    the patch) is fitted by least squares jointly to the positions and normals of the n–w mesh
    vertices that lie 2.5σ–9 voxels from the solid within ``fit_radius`` of the point, and a tangent
