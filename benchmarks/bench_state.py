@@ -80,7 +80,7 @@ def _run(stage: str, arrays: dict, paths: dict, threads: int, tmp: Path) -> None
     from wetpath._lattice import lattice_measures
     from wetpath._measure import measure_clusters
     from wetpath._mesh import mesh_measures
-    from wetpath._stages import measure_step, open_clusters
+    from wetpath._stages import MESH_CHUNKS, measure_step, open_clusters
     from wetpath._store import open_step
     from wetpath._topological import topological_from_clusters
     from wetpath._tracking import overlap_table
@@ -100,7 +100,8 @@ def _run(stage: str, arrays: dict, paths: dict, threads: int, tmp: Path) -> None
     elif stage == "topological":
         topological_from_clusters(arrays["table"])
     elif stage == "geometric":
-        summarise_geometric(geometric_angles(lab, clusters=cl, threads=threads))
+        summarise_geometric(geometric_angles(lab, clusters=cl, chunks=MESH_CHUNKS,
+                                             threads=threads))
     elif stage == "perturb":
         for p in perturb_fluid_boundary(lab):
             lattice_measures(p, threads=threads)

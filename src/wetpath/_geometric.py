@@ -8,9 +8,11 @@ intersected:
 
 1. per n cluster, on its bounding box (padded), the n and solid indicators are Gaussian-smoothed
    (σ voxels) and meshed by marching cubes at level 0.5 (Lorensen & Cline 1987), then
-   Taubin-smoothed (Taubin 1995);
+   Taubin-smoothed (Taubin 1995) — with ``chunks``, a box larger than a chunk is processed core by
+   core with a halo, each point and face counted by the one core that owns it, so that peak memory
+   is bounded by a chunk and not by a percolating cluster's box (the whole volume);
 2. contact-line points are where the n fraction of the pore, G*n / G*(n ∪ w), crosses 1/2 on the
-   solid mesh; they are thinned to about one per ``spacing`` voxels;
+   solid mesh; they are thinned to one per cell of a ``spacing``-voxel lattice;
 3. at each point a quadric height field h(u, v) in a local frame (normal e3 = the mean n–w normal of
    the patch) is fitted by least squares jointly to the positions and normals of the n–w mesh
    vertices that lie 2.5σ–9 voxels from the solid within ``fit_radius`` of the point, and a tangent
@@ -35,6 +37,7 @@ Taubin, G. (1995). A signal processing approach to fair surface design. *Proc. S
 
 from __future__ import annotations
 
+import itertools
 import math
 import warnings
 from concurrent.futures import ThreadPoolExecutor
@@ -114,9 +117,11 @@ def _mesh(field: np.ndarray, toward_high: bool, mask: np.ndarray | None = None
     return verts, faces, normals * (sign if toward_high else -sign)
 
 
-def _contact_points(solid_verts, solid_faces, frac, spacing):
+def _contact_points(solid_verts, solid_faces, frac, spacing, offset):
     """Points where the n fraction ``frac`` crosses 1/2 along solid-mesh edges, thinned to one per
-    cell of ``spacing`` voxels."""
+    cell of ``spacing`` voxels: in each cell the point first in (z, y, x) order, so that the choice
+    does not depend on the order of the mesh. Returns the points and their cells, both on the
+    lattice of the cluster box (``offset``: the mesh origin in box voxels), in cell order."""
     # every edge is met twice (once per face); its two identical points fall in one thinning cell
     e = solid_faces[:, [0, 1, 1, 2, 2, 0]].reshape(-1, 2)
     a, b = e[:, 0], e[:, 1]
@@ -124,14 +129,13 @@ def _contact_points(solid_verts, solid_faces, frac, spacing):
     cross = (fa * fb < 0) & np.isfinite(fa) & np.isfinite(fb)
     a, b, fa, fb = a[cross], b[cross], fa[cross], fb[cross]
     t = (fa / (fa - fb))[:, None]
-    pts = solid_verts[a] * (1 - t) + solid_verts[b] * t
-    if len(pts) == 0:
-        return pts
+    pts = solid_verts[a] * (1 - t) + solid_verts[b] * t + offset
     cell = np.floor(pts / spacing).astype(np.int64)
-    cell -= cell.min(axis=0)
-    dims = cell.max(axis=0) + 1
-    _, keep = np.unique(np.ravel_multi_index(cell.T, dims), return_index=True)
-    return pts[np.sort(keep)]
+    order = np.lexsort((pts[:, 2], pts[:, 1], pts[:, 0], cell[:, 2], cell[:, 1], cell[:, 0]))
+    pts, cell = pts[order], cell[order]
+    first = np.ones(len(pts), bool)
+    first[1:] = np.any(cell[1:] != cell[:-1], axis=1)
+    return pts[first], cell[first]
 
 
 def _frame(e3: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -333,55 +337,118 @@ def _intersect(points, beta, frame, centre, nu_s, max_step):
 
 def _no_points(area_nw: float, unresolved: bool = False) -> dict:
     return {"pts": np.zeros((0, 3)), "theta": np.zeros(0), "n_fit": np.zeros(0, int),
-            "unresolved": np.zeros(0, bool), "area_nw": area_nw, "speck": unresolved}
+            "unresolved": np.zeros(0, bool), "area_nw": area_nw, "speck": unresolved,
+            "cell": np.zeros((0, 3), np.int64)}
 
 
-def _cluster_angles(lab, cl, k, box, sigma, spacing, fit_radius, band) -> dict:
+def _cluster_angles(lab, cl, k, box, sigma, spacing, fit_radius, band, chunks=None) -> dict:
     """Contact-line angles of cluster ``k`` in its padded bounding box (voxel coordinates of the
-    box): points, angles, vertices per fit, unresolved mask and the n–w area (voxel²)."""
-    sub = lab[box]
-    n_ind = cl[box] == k
+    box): points, angles, vertices per fit, unresolved mask and the n–w area (voxel²).
+
+    With ``chunks`` (core edge, voxels), a box larger than that is processed core by core, each
+    with a halo of :func:`_chunk_halo` voxels; a point belongs to the core holding the corner of
+    its thinning cell, an n–w face to the core holding its centroid."""
+    shape = np.array([s.stop - s.start for s in box])
+    if chunks is None or np.all(shape <= chunks):
+        return _region_angles(lab, cl, k, box, np.zeros(3, int), shape, np.zeros(3, int), shape,
+                              sigma, spacing, fit_radius, band)
+    halo = _chunk_halo(sigma, spacing, fit_radius, band)
+    parts = []
+    for lo in itertools.product(*(range(0, n, chunks) for n in shape)):
+        lo = np.array(lo)
+        hi = np.minimum(lo + chunks, shape)
+        parts.append(_region_angles(lab, cl, k, box, lo, hi, np.maximum(lo - halo, 0),
+                                    np.minimum(hi + halo, shape), sigma, spacing, fit_radius, band))
+    if all(p["speck"] for p in parts):
+        return _no_points(0.0, unresolved=True)
+    cell = np.concatenate([p["cell"] for p in parts])
+    order = np.lexsort(cell.T[::-1]) if len(cell) else np.zeros(0, int)
+    return {"pts": np.concatenate([p["pts"] for p in parts])[order],
+            "theta": np.concatenate([p["theta"] for p in parts])[order],
+            "n_fit": np.concatenate([p["n_fit"] for p in parts])[order],
+            "unresolved": np.concatenate([p["unresolved"] for p in parts])[order],
+            "area_nw": float(sum(p["area_nw"] for p in parts)), "speck": False, "cell": cell[order]}
+
+
+def _chunk_halo(sigma: float, spacing: float, fit_radius: float, band) -> int:
+    """Voxels of context around a core so that everything its points and faces use is the same as
+    in the whole box: points reach ``spacing`` past the core, their fits ``fit_radius`` and the
+    solid planes max(4, 3σ) further; a vertex there needs its distance to solid within band[1]
+    and its 10 Taubin rings (≤ 2 voxels each, generous) plus one cube, on a field blurred with a
+    4σ kernel."""
+    reach = spacing + max(fit_radius, 4.0, 3 * sigma) + 1
+    return int(math.ceil(reach + max(2 * TAUBIN_ITERATIONS + 1 + math.ceil(4 * sigma + 0.5),
+                                     band[1] + 1))) + 2
+
+
+def _region_angles(lab, cl, k, box, core_lo, core_hi, lo, hi, sigma, spacing, fit_radius,
+                   band) -> dict:
+    """:func:`_cluster_angles` on the part ``lo:hi`` of the box (box voxels), keeping the points
+    and n–w faces owned by the core ``core_lo:core_hi``; results in box coordinates."""
+    region = tuple(slice(s.start + int(a), s.start + int(b))
+                   for s, a, b in zip(box, lo, hi, strict=True))
+    offset = lo.astype(float)
+    sub = lab[region]
+    n_ind = cl[region] == k
     s_ind = sub == SOLID
     fluid = n_ind | (sub == WETTING) | (sub == NONWETTING)
+    del sub
     gn = ndimage.gaussian_filter(n_ind.astype(np.float32), sigma, mode="nearest")
-    gs = ndimage.gaussian_filter(s_ind.astype(np.float32), sigma, mode="nearest")
-    gf = ndimage.gaussian_filter(fluid.astype(np.float32), sigma, mode="nearest")
+    del n_ind
     if gn.max() <= 0.5:  # a speck that smoothing erases: no surface to fit
         return _no_points(0.0, unresolved=True)
+    gs = ndimage.gaussian_filter(s_ind.astype(np.float32), sigma, mode="nearest")
+    gf = ndimage.gaussian_filter(fluid.astype(np.float32), sigma, mode="nearest")
+    del fluid
     nv, nf, nn = _mesh(gn, toward_high=True)  # ν_{w→n}: up the n indicator
-    if not s_ind.any() or gs.max() < 0.5 or gs.min() > 0.5:
-        return _no_points(_nw_area(nv, nf, None))
     # distance of the n-mesh vertices from the solid boundary (voxel centres are 1/2 off it)
-    d_solid = _distance_to(s_ind)
-    d_solid -= 0.5                       # in place: no second full-box float64 temporary
-    d_solid = d_solid.astype(np.float32)
-    ds_n = _sample(d_solid, nv)
-    area_nw = _nw_area(nv, nf, ds_n)
+    if s_ind.any():
+        d_solid = _distance_to(s_ind)
+        d_solid -= 0.5                   # in place: no second full-box float64 temporary
+        d_solid = d_solid.astype(np.float32)
+        ds_n = _sample(d_solid, nv)
+        del d_solid
+    else:
+        ds_n = np.full(len(nv), np.inf, np.float32)
+    own_face = _owned(nv[nf].mean(axis=1) + offset, core_lo, core_hi)
+    area_nw = _nw_area(nv, nf[own_face], ds_n)
     # ν_s: down the solid indicator, into the pore; meshed only within the blur's reach (4σ) of
     # the cluster, where its contact line can be
     near = gn > 0
     if not ((gs[near] > 0.5).any() and (gs[near] < 0.5).any()):
         return _no_points(area_nw)
     sv, sf, sn = _mesh(gs, toward_high=False, mask=near)
+    del gs, near
     with np.errstate(invalid="ignore", divide="ignore"):
         frac = _sample(gn, sv) / _sample(gf, sv)
-    pts = _contact_points(sv, sf, frac, spacing)
+    del gn, gf
+    pts, cell = _contact_points(sv, sf, frac, spacing, offset)
+    own = _owned(cell * spacing, core_lo, core_hi)
+    pts, cell = pts[own], cell[own]
     if len(pts) == 0:
         return _no_points(area_nw)
+    local = pts - offset
     in_band = (ds_n >= band[0]) & (ds_n <= band[1])
-    if in_band.sum() < _MIN_FIT:
+    if not in_band.any():
         return {"pts": pts, "theta": np.full(len(pts), np.nan), "n_fit": np.zeros(len(pts), int),
-                "unresolved": np.ones(len(pts), bool), "area_nw": area_nw, "speck": False}
-    beta, frame, count, span = _fit_quadrics(pts, nv[in_band], nn[in_band], ds_n[in_band],
+                "unresolved": np.ones(len(pts), bool), "area_nw": area_nw, "speck": False,
+                "cell": cell}
+    beta, frame, count, span = _fit_quadrics(local, nv[in_band], nn[in_band], ds_n[in_band],
                                              fit_radius, _SLOPE_SCALE)
     unresolved = (span < _MIN_SPAN) | (count < _MIN_FIT)
-    centre, nu_s, plane_ok = _solid_planes(pts, cKDTree(sv), sv, _sample_normals(sv, sn, pts),
+    centre, nu_s, plane_ok = _solid_planes(local, cKDTree(sv), sv, _sample_normals(sv, sn, local),
                                            max(4.0, 3 * sigma))
-    where, nu_wn, cut_ok = _intersect(pts, beta, frame, centre, nu_s, max_step=fit_radius)
+    where, nu_wn, cut_ok = _intersect(local, beta, frame, centre, nu_s, max_step=fit_radius)
     cos = np.clip(np.sum(nu_s * nu_wn, axis=1), -1, 1)
     theta = np.where(~unresolved & plane_ok & cut_ok, np.degrees(np.arccos(cos)), np.nan)
-    return {"pts": np.where(np.isfinite(theta)[:, None], where, pts), "theta": theta,
-            "n_fit": count, "unresolved": unresolved, "area_nw": area_nw, "speck": False}
+    return {"pts": np.where(np.isfinite(theta)[:, None], where + offset, pts), "theta": theta,
+            "n_fit": count, "unresolved": unresolved, "area_nw": area_nw, "speck": False,
+            "cell": cell}
+
+
+def _owned(x: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
+    """Rows of ``x`` (box voxels) inside the core ``[lo, hi)``."""
+    return np.all((x >= lo) & (x < hi), axis=1)
 
 
 def _distance_to(feature: np.ndarray) -> np.ndarray:
@@ -429,8 +496,8 @@ def geometric_angles(labels: np.ndarray, voxel_size: float = 1.0, *,
                      codes: PhaseCodes | dict | None = None, clusters: np.ndarray | None = None,
                      sigma: float = 1.0, spacing: float = 3.0, fit_radius: float = 10.0,
                      band: tuple[float, float] | None = None,
-                     min_interface_vox2: float = 1000.0, threads: int | None = None
-                     ) -> pd.DataFrame:
+                     min_interface_vox2: float = 1000.0, chunks: int | None = None,
+                     threads: int | None = None) -> pd.DataFrame:
     """Contact angles at points of the contact line, from local fits of the n–w interface and the
     solid intersected with each other (AlRatrout et al. 2017).
 
@@ -457,6 +524,12 @@ def geometric_angles(labels: np.ndarray, voxel_size: float = 1.0, *,
     min_interface_vox2 : float
         Clusters whose n–w interface is smaller than this (voxel²) are flagged
         ``flag_small_interface`` and a warning is issued (Khanamiri et al. 2020: ~1000 voxel²).
+    chunks : int, optional
+        Core edge (voxels) of the chunks in which a cluster box larger than that is processed,
+        each with a halo wide enough for the blur, the smoothing and the fits, so that peak
+        memory is bounded by a few chunks rather than by the box (a percolating cluster's box is
+        the whole volume). None: each box whole. The points and angles equal the whole-box ones
+        up to the order of floating-point summation.
     threads : int, optional
         Worker threads over clusters (None: all cores); the result does not depend on it.
 
@@ -505,7 +578,7 @@ def geometric_angles(labels: np.ndarray, voxel_size: float = 1.0, *,
 
     def one(k):
         return _cluster_table(_cluster_angles(lab, clusters, k, boxes[k], sigma, spacing,
-                                              fit_radius, band),
+                                              fit_radius, band, chunks),
                               k, boxes[k], voxel_size, min_interface_vox2)
 
     # largest boxes first so that the threads finish together; the table keeps cluster order

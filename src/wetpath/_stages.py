@@ -158,7 +158,8 @@ def measure_step(store: str | os.PathLike, clusters_store: str | os.PathLike,
     paths = measure_paths(out_folder, step)
     per_cluster = topo["clusters"] if len(topo["clusters"]) else table
     if geometric:
-        points = geometric_angles(labels, h, clusters=clusters, sigma=sigma, threads=threads)
+        points = geometric_angles(labels, h, clusters=clusters, sigma=sigma, chunks=MESH_CHUNKS,
+                                  threads=threads)
         geo = summarise_geometric(points)
         row.update({"theta_geom_median_deg": geo["median_deg"], "theta_geom_q25_deg":
                     geo["q25_deg"], "theta_geom_q75_deg": geo["q75_deg"],
