@@ -3,20 +3,25 @@
 Stages (each (stage, size) in a fresh Python process, so that its peak resident memory is its own):
 ``read`` (step store and cluster store from zarr into memory), ``lattice`` (volumes, Crofton areas,
 Euler characteristics), ``label`` (n clusters), ``cluster_lattice`` (per-cluster lattice measures),
-``mesh`` (per-cluster mesh measures), ``topological`` (angle from the per-cluster table, after
-``measure_clusters``), ``geometric`` (contact-line angles and their summary), ``perturb`` (±1-voxel
-fluid boundary and its two lattice passes), ``overlap`` (cluster overlap table between two states)
-and ``measure_step`` (the workflow's measure stage end to end: read, all of the above but labelling
+``mesh`` (per-cluster mesh measures alone), ``mesh_angles`` (mesh measures and geometric
+contact-line angles from one meshing pass, as the workflow runs them), ``topological`` (angle
+from the per-cluster table, after ``measure_clusters``), ``perturb`` (±1-voxel fluid boundary and
+its two lattice passes), ``overlap`` (cluster overlap table between two states) and
+``measure_step`` (the workflow's measure stage end to end: read, all of the above but labelling
 and tracking, and the tables written).
 
-Media: a 256³ random three-phase medium (``wetpath.synthetic.random_medium``: ~35 % porosity, both
-fluids, grain scale 3 and fluid scale 4 voxels, hundreds of n clusters) mirror-tiled to the
-requested size, as in ``bench_streaming.py``; the second state for tracking has the same solid at a
-lower wetting saturation. They are written as step stores (OME-Zarr, as ``wetpath ingest`` writes
-them) with their cluster stores (as ``wetpath label`` writes them).
+Media: a random three-phase medium (``wetpath.synthetic.random_medium``: ~35 % porosity, both
+fluids, many n clusters) generated at up to 256³ and mirror-tiled to the requested size. The
+default grain and fluid scales, 8 and 10 voxels (Gaussian-field correlation lengths; grains and
+pores ~20 voxels across), give pores of the size at which contact angles can be measured at all
+(menisci of ≥ 10–20 voxels radius, issues 3 and 5); ``--medium fine`` (scales 3 and 4: pores ~6
+voxels across, hundreds of clusters, ~3× the interface area per voxel and nearly every interface
+unresolvable) is the worst case for the mesh stages. The second state for tracking has the same
+solid at a lower wetting saturation. They are written as step stores (OME-Zarr, as ``wetpath
+ingest`` writes them) with their cluster stores (as ``wetpath label`` writes them).
 
-``--area`` adds a run at one size over fluid scales 2–6 voxels: the n–w interface area changes
-several-fold at the same voxel count, and the mesh and geometric stages' cost follows it.
+``--area`` adds a run at one size over fluid scales 4–12 voxels: the n–w interface area changes
+several-fold at the same voxel count, and the mesh stage's cost follows it.
 
 Usage::
 
@@ -41,28 +46,31 @@ from pathlib import Path
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from bench_streaming import _base, _reflect, _rss_mb, machine  # noqa: E402
+from bench_streaming import _reflect, _rss_mb, machine  # noqa: E402
 
-STAGES = ("read", "lattice", "label", "cluster_lattice", "mesh", "topological", "geometric",
+STAGES = ("read", "lattice", "label", "cluster_lattice", "mesh", "mesh_angles", "topological",
           "perturb", "overlap", "measure_step")
+MEDIA = {"pores20": (8.0, 10.0), "fine": (3.0, 4.0)}
+"""Grain and fluid scales (voxels) of the benchmark media."""
 
 
-def make_stores(size: int, cache: Path, fluid_scale: float | None = None) -> dict[str, Path]:
+def make_stores(size: int, cache: Path, medium: str = "pores20",
+                fluid_scale: float | None = None) -> dict[str, Path]:
     """Step stores ``a``/``b`` and their cluster stores under ``cache``; returns their paths."""
     from wetpath import synthetic
     from wetpath._stages import label_step
     from wetpath._store import create_step_store
 
-    tag = f"{size}" if fluid_scale is None else f"{size}_f{fluid_scale:g}"
+    grain, fluid = MEDIA[medium]
+    fluid = fluid if fluid_scale is None else fluid_scale
+    tag = f"{size}_g{grain:g}_f{fluid:g}"
     paths = {}
     for name, sat in (("a", 0.55), ("b", 0.45)):
         store, clusters = cache / f"{name}_{tag}.zarr", cache / f"{name}_{tag}_clusters.zarr"
         if not clusters.exists():
-            if fluid_scale is None:
-                base = _base(size, sat)
-            else:
-                base = synthetic.random_medium((size,) * 3, porosity=0.35, saturation_w=sat,
-                                               fluid_scale=fluid_scale, seed=11)
+            m = min(size, 256)
+            base = synthetic.random_medium((m,) * 3, porosity=0.35, saturation_w=sat,
+                                           grain_scale=grain, fluid_scale=fluid, seed=11)
             idx = _reflect(size, base.shape[0])
             level0, _ = create_step_store(store, (size,) * 3, 1.0, chunks=(128, 256, 256),
                                           attrs={"step": name})
@@ -76,7 +84,7 @@ def make_stores(size: int, cache: Path, fluid_scale: float | None = None) -> dic
 def _run(stage: str, arrays: dict, paths: dict, threads: int, tmp: Path) -> None:
     from wetpath._clusters import cluster_lattice_measures, label_clusters
     from wetpath._energy import perturb_fluid_boundary
-    from wetpath._geometric import geometric_angles, summarise_geometric
+    from wetpath._geometric import mesh_and_angles, summarise_geometric
     from wetpath._lattice import lattice_measures
     from wetpath._measure import measure_clusters
     from wetpath._mesh import mesh_measures
@@ -96,12 +104,12 @@ def _run(stage: str, arrays: dict, paths: dict, threads: int, tmp: Path) -> None
     elif stage == "cluster_lattice":
         cluster_lattice_measures(lab, cl, threads=threads)
     elif stage == "mesh":
-        mesh_measures(lab, clusters=cl, threads=threads)
+        mesh_measures(lab, clusters=cl, chunks=MESH_CHUNKS, threads=threads)
+    elif stage == "mesh_angles":
+        summarise_geometric(mesh_and_angles(lab, clusters=cl, chunks=MESH_CHUNKS,
+                                            threads=threads)[1])
     elif stage == "topological":
         topological_from_clusters(arrays["table"])
-    elif stage == "geometric":
-        summarise_geometric(geometric_angles(lab, clusters=cl, chunks=MESH_CHUNKS,
-                                             threads=threads))
     elif stage == "perturb":
         for p in perturb_fluid_boundary(lab):
             lattice_measures(p, threads=threads)
@@ -131,7 +139,8 @@ def run_stage(stage: str, paths: dict, threads: int) -> dict:
             "clusters": np.asarray(open_clusters(paths["a_clusters"])[:24, :24, :24])}
     crop["clusters_b"] = crop["clusters"]
     # load numba's cached kernels (and compile what is not cached) before timing
-    for warm in ("lattice", "label", "cluster_lattice", "mesh", "geometric", "perturb", "overlap"):
+    for warm in ("lattice", "label", "cluster_lattice", "mesh", "mesh_angles", "perturb",
+                 "overlap"):
         if stage in (warm, "measure_step"):
             _run(warm, crop, paths, threads, tmp)
     if stage == "topological":
@@ -181,8 +190,10 @@ def main(argv=None) -> int:
                     help="edge lengths (default 256 512)")
     ap.add_argument("--streaming", action="store_true",
                     help="run the streaming passes from zarr (bench_streaming.py) at --size")
+    ap.add_argument("--medium", choices=sorted(MEDIA), default="pores20",
+                    help="benchmark medium (default pores20: grain/fluid scales 8/10 voxels)")
     ap.add_argument("--area", type=int, default=None, metavar="SIZE",
-                    help="also run mesh, geometric and measure_step at SIZE over fluid scales")
+                    help="also run mesh_angles and measure_step at SIZE over fluid scales")
     ap.add_argument("--threads", type=int, default=None, help="worker threads (default: all)")
     ap.add_argument("--stages", nargs="*", default=list(STAGES), choices=STAGES)
     ap.add_argument("--cache", type=Path, default=None, help="directory for generated inputs")
@@ -211,20 +222,20 @@ def main(argv=None) -> int:
     rows = []
     for size in args.size:
         t = time.perf_counter()
-        paths = make_stores(size, cache)
+        paths = make_stores(size, cache, args.medium)
         print(f"# inputs {size}³: {time.perf_counter() - t:.1f} s", flush=True)
         for stage in args.stages:
             r = _worker(stage, paths, threads)
-            r["label"] = f"{size}³"
+            r["label"] = f"{size}³ {args.medium}"
             rows.append(r)
             print(f"# {stage:16s} {size:5d}³ {r['mvox_s']:8.2f} Mvox/s "
                   f"{r['peak_rss_mb']:7.0f} MB", flush=True)
     area_rows = []
     if args.area:
-        for scale in (2.0, 3.0, 4.0, 6.0):
-            paths = make_stores(args.area, cache, fluid_scale=scale)
+        for scale in (4.0, 6.0, 8.0, 12.0):
+            paths = make_stores(args.area, cache, args.medium, fluid_scale=scale)
             area = _area_nw(paths["a"])
-            for stage in ("mesh", "geometric", "measure_step"):
+            for stage in ("mesh_angles", "measure_step"):
                 r = _worker(stage, paths, threads)
                 r["label"] = f"{args.area}³ fluid scale {scale:g}, A_nw {area:.3g} vox²"
                 r["area"] = area

@@ -1,8 +1,8 @@
 """The fast (compiled, threaded) paths equal their plain reference paths on small random media.
 
-Oracles: ``scipy.ndimage.distance_transform_edt`` (exact Euclidean distance transform),
-``numpy.add.at`` accumulation, ``wetpath._mesh.taubin_smooth`` (sparse-matrix Taubin smoothing) and
-``wetpath._geometric._fit_quadrics_reference`` (batched numpy least squares). Where only the order
+Oracles: ``wetpath._geometric._fit_quadrics_reference`` (batched numpy least squares) and a numpy
+listing of solid–fluid voxel faces for the solid tangent planes (the compiled mesh kernels are
+checked against their numpy oracles in ``test_mesh.py``). Where only the order
 of floating-point summation differs the tolerance is 1e-9 relative; everything else is exact.
 """
 
@@ -18,13 +18,14 @@ from scipy import ndimage
 from wetpath import _geometric as geo
 from wetpath import synthetic
 from wetpath._clusters import label_clusters
-from wetpath._mesh import taubin_smooth
+from wetpath._mesh import smoothed_mesh, vertex_measures, wall_distance
 
 
 @pytest.fixture(scope="module", params=[3, 8])
 def medium(request):
-    lab = synthetic.random_medium((44, 40, 36), porosity=0.35, saturation_w=0.5,
-                                  seed=request.param)
+    # pores wide enough (grain and fluid scales 5 voxels) for interfaces that rise above the band
+    lab = synthetic.random_medium((56, 52, 48), porosity=0.35, saturation_w=0.5, grain_scale=5.0,
+                                  fluid_scale=5.0, seed=request.param)
     clusters, _ = label_clusters(lab)
     return lab, clusters
 
@@ -35,39 +36,59 @@ def _angles(lab, clusters, threads):
         return geo.geometric_angles(lab, 1.0, clusters=clusters, threads=threads)
 
 
-def test_distance_transform_equals_scipy(medium):
-    lab, _ = medium
+def _solid_planes_numpy(points, lab, radius):
+    """Oracle of ``_geometric._solid_planes``: every solid–fluid voxel face listed by numpy, then a
+    principal-axis plane per point through the face centres within ``radius``."""
+    centres, dirs = [], []
     solid = lab == 1
-    np.testing.assert_array_equal(geo._distance_to(solid),
-                                  ndimage.distance_transform_edt(~solid))
-    box = solid[:9, :30, 5:7]
-    np.testing.assert_array_equal(geo._distance_to(box), ndimage.distance_transform_edt(~box))
+    fluid = (lab == 2) | (lab == 3)
+    for ax in range(3):
+        for sgn in (-1, 1):
+            nb = np.zeros_like(fluid)
+            src = [slice(None)] * 3
+            dst = [slice(None)] * 3
+            src[ax] = slice(1, None) if sgn > 0 else slice(None, -1)
+            dst[ax] = slice(None, -1) if sgn > 0 else slice(1, None)
+            nb[tuple(dst)] = fluid[tuple(src)]
+            vox = np.argwhere(solid & nb).astype(float)
+            step = np.zeros(3)
+            step[ax] = 0.5 * sgn
+            centres.append(vox + step)
+            dirs.append(np.repeat(2 * step[None], len(vox), axis=0))
+    centres, dirs = np.concatenate(centres), np.concatenate(dirs)
+    out_c, out_n, ok = [], [], []
+    for p in points:
+        near = np.sum((centres - p) ** 2, axis=1) <= radius * radius
+        c = centres[near].mean(axis=0)
+        w, v = np.linalg.eigh(np.cov((centres[near] - c).T, bias=True))
+        n = v[:, 0] * np.sign(v[:, 0] @ dirs[near].sum(axis=0))
+        out_c.append(c)
+        out_n.append(n)
+        ok.append(near.sum() >= 6)
+    return np.array(out_c), np.array(out_n), np.array(ok)
 
 
-def test_mesh_kernels_equal_numpy(medium):
+def test_solid_planes_equal_numpy(medium):
     lab, _ = medium
-    field = ndimage.gaussian_filter((lab == 3).astype(np.float32), 1.0, mode="nearest")
-    from skimage.measure import marching_cubes
-
-    verts, faces, _, _ = marching_cubes(field, 0.5, allow_degenerate=False)
-    faces = faces.astype(np.int64)
-    smooth = geo._smooth(verts, faces)
-    np.testing.assert_allclose(smooth, taubin_smooth(verts, faces), rtol=1e-9, atol=1e-9)
-    fn = np.cross(smooth[faces[:, 1]] - smooth[faces[:, 0]], smooth[faces[:, 2]] - smooth[faces[:, 0]])
-    ref = np.zeros_like(smooth)
-    for k in range(3):
-        np.add.at(ref, faces[:, k], fn)
-    ref /= np.where((n := np.linalg.norm(ref, axis=1, keepdims=True)) > 0, n, 1.0)
-    np.testing.assert_array_equal(geo._vertex_normals(smooth, faces), ref)
+    rng = np.random.default_rng(1)
+    surface = np.argwhere((lab == 1) & (ndimage.binary_dilation(lab != 1) & (lab == 1)))
+    pts = surface[rng.choice(len(surface), 50, replace=False)] + rng.uniform(-0.5, 0.5, (50, 3))
+    got = geo._solid_planes(pts, lab, 4.0)
+    ref = _solid_planes_numpy(pts, lab, 4.0)
+    np.testing.assert_array_equal(got[2], ref[2])
+    ok = ref[2]
+    np.testing.assert_allclose(got[0][ok], ref[0][ok], rtol=1e-9, atol=1e-9)
+    # the smallest axis is defined up to its sign, which both orient out of the solid
+    np.testing.assert_allclose(got[1][ok], ref[1][ok], rtol=1e-6, atol=1e-6)
 
 
 def test_quadric_fit_equals_reference(medium):
     lab, clusters = medium
     k = int(np.bincount(clusters.ravel())[1:].argmax()) + 1
-    field = ndimage.gaussian_filter((clusters == k).astype(np.float32), 1.0, mode="nearest")
-    verts, faces, normals = geo._mesh(field, toward_high=True)
-    dist = (geo._distance_to(lab == 1) - 0.5).astype(np.float32)
-    d = geo._sample(dist, verts)
+    _, verts, faces = smoothed_mesh(clusters == k, 1.0)
+    normals = -vertex_measures(verts, faces)[3]
+    d = wall_distance(lab == 1, 20.0)
+    d = ndimage.map_coordinates(d, verts.T, order=1, mode="nearest")
     rng = np.random.default_rng(0)
     pts = verts[rng.choice(len(verts), 60, replace=False)] + rng.normal(0, 0.5, (60, 3))
     fast = geo._fit_quadrics(pts, verts, normals, d, 10.0, geo._SLOPE_SCALE)
@@ -83,8 +104,7 @@ def test_geometric_angles_fast_equals_reference(medium, monkeypatch):
     lab, clusters = medium
     fast = _angles(lab, clusters, threads=2)
     monkeypatch.setattr(geo, "_fit_quadrics", geo._fit_quadrics_reference)
-    monkeypatch.setattr(geo, "_smooth", taubin_smooth)
-    monkeypatch.setattr(geo, "_distance_to", lambda f: ndimage.distance_transform_edt(~f))
+    monkeypatch.setattr(geo, "_solid_planes", _solid_planes_numpy)
     ref = _angles(lab, clusters, threads=1)
     assert np.isfinite(fast["theta_deg"]).sum() > 20
     floats = ["z", "y", "x", "theta_deg", "area_nw_vox2"]
@@ -100,19 +120,20 @@ def test_geometric_angles_do_not_depend_on_threads(medium):
 
 
 def _assert_chunked_equal(whole, chunked):
-    # Same points, same flags and fit counts; the angles and point coordinates agree to 1e-6
-    # (degrees, voxels), the n–w areas to 1e-12 relative. Inside a chunk's halo everything is
-    # computed from the same voxels; what differs is the order of floating-point summation in
-    # batched numpy reductions, which a poorly conditioned fit amplifies (measured here: at most
-    # 9.3e-7° and 2.2e-7 voxel on a 60×56×52 random medium, 0 for most points).
+    # Same points, same flags and fit counts; the angles and point coordinates agree to 1e-4
+    # (degrees, voxels), the n–w areas to 1e-7 relative (measured: 1.8e-8). The halo
+    # (``_mesh._halo``) covers the blur, the wall distances and the fits' reach but not the
+    # full 20-ring reach of Taubin smoothing, whose influence has decayed to ~1e-5 voxel there
+    # (measured here on the 60° cap: at most 1.0e-5° with the default halo, 2.5e-7° with 10
+    # voxels more, 0 when the halo holds the whole box; on the random media at most 2.3e-5).
     floats = ["z", "y", "x", "theta_deg", "area_nw_vox2"]
     assert np.isfinite(whole["theta_deg"]).sum() > 20
     pd.testing.assert_frame_equal(whole.drop(columns=floats), chunked.drop(columns=floats))
     np.testing.assert_array_equal(whole["theta_deg"].isna(), chunked["theta_deg"].isna())
     np.testing.assert_allclose(chunked[["z", "y", "x", "theta_deg"]].to_numpy(float),
                                whole[["z", "y", "x", "theta_deg"]].to_numpy(float), rtol=0,
-                               atol=1e-6)
-    np.testing.assert_allclose(chunked["area_nw_vox2"], whole["area_nw_vox2"], rtol=1e-12)
+                               atol=1e-4)
+    np.testing.assert_allclose(chunked["area_nw_vox2"], whole["area_nw_vox2"], rtol=1e-7)
 
 
 def test_geometric_angles_chunked_equal_whole_boxes(medium):
@@ -133,3 +154,38 @@ def test_geometric_angles_chunked_cap_on_plate():
     chunked = geo.geometric_angles(lab, chunks=24)
     _assert_chunked_equal(whole, chunked)
     assert np.nanmedian(chunked["theta_deg"]) == pytest.approx(60.0, abs=3.0)
+
+
+def test_mesh_glue_kernels_equal_numpy(medium):
+    # compiled edge list, trilinear sampling, ownership and voxel flux of ``_mesh`` against their
+    # numpy/scipy oracles (``scipy.ndimage.map_coordinates`` for the sampling)
+    from wetpath import _mesh as m
+
+    lab, clusters = medium
+    k = int(np.bincount(clusters.ravel())[1:].argmax()) + 1
+    verts0, verts, faces = smoothed_mesh(clusters == k, 1.0)
+    for got, ref in zip(m._edges(faces, len(verts)), m._edges_reference(faces, len(verts)),
+                        strict=True):
+        np.testing.assert_array_equal(got, ref)
+    sd = wall_distance(lab == 1, 14.0)
+    rng = np.random.default_rng(2)
+    pts = np.concatenate([verts, rng.uniform(-1.5, np.array(lab.shape) + 0.5, (500, 3))])
+    for got, ref in zip(m._sample_kernel(sd, pts), m._sample_reference(sd, pts), strict=True):
+        np.testing.assert_allclose(got, ref, rtol=1e-12, atol=1e-12)
+    edges = m._edges(faces, len(verts))[0]
+    lo, hi = np.array([5.0, 3.0, 7.0]), np.array([30.0, 40.0, 20.0])
+    v_own, f_own, e_own = m._owned_kernel(verts0, faces, edges, lo, hi)
+
+    def owned(p):
+        c = np.floor(p + 1e-9)
+        return np.all((c >= lo) & (c < hi), axis=1)
+
+    np.testing.assert_array_equal(v_own, owned(verts0))
+    np.testing.assert_array_equal(f_own, owned((verts0[faces[:, 0]] + verts0[faces[:, 1]]
+                                                + verts0[faces[:, 2]]) / 3.0))
+    np.testing.assert_array_equal(e_own, owned(0.5 * (verts0[edges[:, 0]] + verts0[edges[:, 1]])))
+    levels = m.band_levels(1.0)
+    args = (clusters, k, sd, np.array([-2, 1, 0]), np.array([0, 4, 3]), np.array([40, 45, 30]),
+            levels)
+    np.testing.assert_allclose(m._voxel_flux_kernel(*args), m._voxel_flux_reference(*args),
+                               rtol=1e-9, atol=1e-9)

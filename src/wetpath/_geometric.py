@@ -6,23 +6,26 @@ pointing from w into n. Smoothing rounds the crease where the two surfaces meet,
 the line are biased toward θ/2; here both surfaces are fitted *away* from the line and the fits are
 intersected:
 
-1. per n cluster, on its bounding box (padded), the n and solid indicators are Gaussian-smoothed
-   (σ voxels) and meshed by marching cubes at level 0.5 (Lorensen & Cline 1987), then
-   Taubin-smoothed (Taubin 1995) — with ``chunks``, a box larger than a chunk is processed core by
-   core with a halo, each point and face counted by the one core that owns it, so that peak memory
-   is bounded by a chunk and not by a percolating cluster's box (the whole volume);
-2. contact-line points are where the n fraction of the pore, G*n / G*(n ∪ w), crosses 1/2 on the
-   solid mesh; they are thinned to one per cell of a ``spacing``-voxel lattice;
-3. at each point a quadric height field h(u, v) in a local frame (normal e3 = the mean n–w normal of
-   the patch) is fitted by least squares jointly to the positions and normals of the n–w mesh
-   vertices that lie 2.5σ–9 voxels from the solid within ``fit_radius`` of the point, and a tangent
-   plane is fitted to the solid mesh vertices near the point;
+1. the n mesh is the one of the mesh measures (:mod:`wetpath._mesh`: per cluster and chunk, the
+   cluster's indicator Gaussian-smoothed by σ voxels, marching cubes at 0.5 (Lorensen & Cline
+   1987), Taubin smoothing (Taubin 1995), the smoothed wall distance d and solid normal ν_s at its
+   vertices), so the two stages share one mesh and one pass over the volume;
+2. contact-line points are where the n–w part of that mesh crosses d = 2.5σ (above the rounded
+   crease), carried down the solid normal to their foot on the solid surface (d = 0); they are
+   thinned to one per cell of a ``spacing``-voxel lattice, and a point belongs to the chunk that
+   holds the corner of its cell;
+3. at each foot point a quadric height field h(u, v) in a local frame (normal e3 = the mean n–w
+   normal of the patch) is fitted by least squares jointly to the positions and normals of the
+   n–w mesh vertices that lie 2.5σ–9 voxels from the solid within ``fit_radius`` of the point, and
+   a tangent plane is fitted (principal axes) to the centres of the solid–fluid voxel faces within
+   max(4, 3σ) voxels of it — unbiased for a voxelised plane at any tilt;
 4. the quadric is intersected with the plane, and cos θ_w = ν_s · ν_{w→n} is read there from the
    quadric's normal and the plane's normal. Points whose fitted patch is too thin to extrapolate
    (an interface that barely rises above the rounded crease) get NaN and ``flag_unresolved``.
 
 The fits run in a compiled kernel, one 6×6 normal-equation system per point, in parallel; the
-batched numpy version is kept as the test oracle. Clusters run on ``threads`` worker threads.
+batched numpy version is kept as the test oracle. Chunks (or clusters) run on ``threads`` worker
+threads.
 
 References
 ----------
@@ -37,10 +40,9 @@ Taubin, G. (1995). A signal processing approach to fair surface design. *Proc. S
 
 from __future__ import annotations
 
-import itertools
+import functools
 import math
 import warnings
-from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 import pandas as pd
@@ -51,7 +53,7 @@ from scipy.spatial import cKDTree
 from ._codes import NONWETTING, SOLID, WETTING, PhaseCodes, to_canonical
 from ._errors import WetpathError
 from ._lattice import resolve_threads
-from ._mesh import TAUBIN_ITERATIONS, TAUBIN_LAMBDA, TAUBIN_MU, _edges, _taubin_kernel, squared_distance
+from ._mesh import finish_mesh, mesh_measures, mesh_sums
 
 __all__ = ["geometric_angles", "summarise_geometric"]
 
@@ -62,80 +64,17 @@ _SLOPE_SCALE = 3.0
 """Weight (voxels) of the slope equations against the position equations in the joint fit."""
 _MIN_FIT = 12
 """Fewest n–w vertices for a quadric fit (6 coefficients)."""
-_MIN_SPAN = 1.5
-"""Least spread (voxels) of the fitted n–w vertices' distances from the solid. Thinner patches
-extrapolate a nearly flat strip: a 150° cap of radius 30 voxels (4 voxels high, span 1.3) read 166°;
-a 135° cap of radius 15 (span 1.5) and a 150° cap of radius 40 (span 1.6) read within 2° (measured
-here)."""
+_MIN_SPAN = 1.75
+"""Least spread (voxels) of the fitted n–w vertices' wall distances. Thinner patches extrapolate a
+nearly flat strip (measured here, two offsets each, axis-aligned and tilted plates): a 150° cap of
+radius 30 voxels (4 voxels high) has spans 1.2–1.5 and reads 152° where its span passes 1.5; a 135°
+cap of radius 15 (4.4 voxels high) spans 1.50–1.56 and reads 3.6–4.3° high; a 150° cap of radius 40
+(span 2.0–2.4) reads within 3.4° and a 140° cap of radius 30 (span 3.0–3.4) within 1°."""
 BIN_EDGES_DEG = np.arange(0.0, 180.0 + 5.0, 5.0)
 """Fixed 5° histogram bins from 0° to 180°."""
 
 _COLUMNS = ["cluster", "z", "y", "x", "theta_deg", "n_fit", "area_nw_vox2",
             "flag_no_contact_line", "flag_unresolved", "flag_fit_failed", "flag_small_interface"]
-
-
-def _smooth(verts: np.ndarray, faces: np.ndarray) -> np.ndarray:
-    """Taubin λ|μ smoothing (Taubin 1995) by the compiled kernel of :mod:`wetpath._mesh`; oracle:
-    ``_mesh.taubin_smooth`` (equal up to the order of floating-point summation)."""
-    return _taubin_kernel(verts.astype(np.float64), _edges(faces, len(verts))[0],
-                          TAUBIN_ITERATIONS, TAUBIN_LAMBDA, TAUBIN_MU)
-
-
-def _vertex_normals(verts: np.ndarray, faces: np.ndarray) -> np.ndarray:
-    """Area-weighted vertex normals, unit length (orientation from the face winding)."""
-    fn = np.cross(verts[faces[:, 1]] - verts[faces[:, 0]], verts[faces[:, 2]] - verts[faces[:, 0]])
-    # one bincount per axis over corners 0, 1, 2 in turn: the same additions in the same order as
-    # ``np.add.at`` corner by corner, without its per-element overhead
-    corners = faces.T.ravel()
-    vn = np.stack([np.bincount(corners, np.tile(fn[:, c], 3), minlength=len(verts))
-                   for c in range(3)], axis=1)
-    norm = np.linalg.norm(vn, axis=1, keepdims=True)
-    return vn / np.where(norm > 0, norm, 1.0)
-
-
-def _sample(field: np.ndarray, pts: np.ndarray) -> np.ndarray:
-    """Trilinear interpolation of ``field`` at voxel coordinates ``pts`` (N, 3)."""
-    return ndimage.map_coordinates(field, pts.T, order=1, mode="nearest")
-
-
-def _gradient_at(field: np.ndarray, pts: np.ndarray) -> np.ndarray:
-    return np.stack([_sample(g, pts) for g in np.gradient(field)], axis=1)
-
-
-def _mesh(field: np.ndarray, toward_high: bool, mask: np.ndarray | None = None
-          ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Marching cubes at 0.5 (only where ``mask``) + Taubin; vertex normals oriented up (or down)
-    the field gradient."""
-    from skimage.measure import marching_cubes
-
-    verts, faces, _, _ = marching_cubes(field, 0.5, allow_degenerate=False, mask=mask)
-    faces = faces.astype(np.int64)
-    verts = _smooth(verts, faces)
-    normals = _vertex_normals(verts, faces)
-    grad = _gradient_at(field, verts)
-    sign = 1.0 if np.sum(normals * grad) >= 0 else -1.0
-    return verts, faces, normals * (sign if toward_high else -sign)
-
-
-def _contact_points(solid_verts, solid_faces, frac, spacing, offset):
-    """Points where the n fraction ``frac`` crosses 1/2 along solid-mesh edges, thinned to one per
-    cell of ``spacing`` voxels: in each cell the point first in (z, y, x) order, so that the choice
-    does not depend on the order of the mesh. Returns the points and their cells, both on the
-    lattice of the cluster box (``offset``: the mesh origin in box voxels), in cell order."""
-    # every edge is met twice (once per face); its two identical points fall in one thinning cell
-    e = solid_faces[:, [0, 1, 1, 2, 2, 0]].reshape(-1, 2)
-    a, b = e[:, 0], e[:, 1]
-    fa, fb = frac[a] - 0.5, frac[b] - 0.5
-    cross = (fa * fb < 0) & np.isfinite(fa) & np.isfinite(fb)
-    a, b, fa, fb = a[cross], b[cross], fa[cross], fb[cross]
-    t = (fa / (fa - fb))[:, None]
-    pts = solid_verts[a] * (1 - t) + solid_verts[b] * t + offset
-    cell = np.floor(pts / spacing).astype(np.int64)
-    order = np.lexsort((pts[:, 2], pts[:, 1], pts[:, 0], cell[:, 2], cell[:, 1], cell[:, 0]))
-    pts, cell = pts[order], cell[order]
-    first = np.ones(len(pts), bool)
-    first[1:] = np.any(cell[1:] != cell[:-1], axis=1)
-    return pts[first], cell[first]
 
 
 def _frame(e3: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -144,24 +83,6 @@ def _frame(e3: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     e1 = np.cross(e3, helper)
     e1 /= np.linalg.norm(e1, axis=1, keepdims=True)
     return e1, np.cross(e3, e1)
-
-
-def _solid_planes(points, solid_tree, solid_verts, solid_grad_out, radius):
-    """Least-squares tangent plane of the solid mesh near each point: centroid and unit normal
-    (smallest principal axis), oriented out of the solid."""
-    dist, idx = solid_tree.query(points, k=48, distance_upper_bound=radius)
-    valid = np.isfinite(dist)
-    idx = np.where(valid, idx, 0)
-    w = valid.astype(float)
-    cnt = w.sum(axis=1)
-    q = solid_verts[idx]
-    centre = (q * w[..., None]).sum(axis=1) / np.maximum(cnt, 1)[:, None]
-    d = (q - centre[:, None, :]) * w[..., None]
-    cov = np.einsum("pki,pkj->pij", d, d)
-    _, vecs = np.linalg.eigh(cov)
-    normal = vecs[:, :, 0]
-    normal *= np.sign(np.sum(normal * solid_grad_out, axis=1, keepdims=True) + 1e-300)
-    return centre, normal, cnt >= 6
 
 
 def _fit_neighbours(points, band_verts, fit_radius):
@@ -335,158 +256,172 @@ def _intersect(points, beta, frame, centre, nu_s, max_step):
     return where, nrm, ok
 
 
-def _no_points(area_nw: float, unresolved: bool = False) -> dict:
-    return {"pts": np.zeros((0, 3)), "theta": np.zeros(0), "n_fit": np.zeros(0, int),
-            "unresolved": np.zeros(0, bool), "area_nw": area_nw, "speck": unresolved,
-            "cell": np.zeros((0, 3), np.int64)}
+@njit(cache=True, nogil=True)
+def _face_sums(points, lab, radius):  # pragma: no cover
+    """Per point: count, Σ c, Σ c cᵀ (6 entries) and Σ outward direction of the solid–fluid voxel
+    faces whose centre c lies within ``radius`` of the point (box voxel coordinates)."""
+    nz, ny, nx = lab.shape
+    out = np.zeros((points.shape[0], 13))
+    r2 = radius * radius
+    for p in range(points.shape[0]):
+        pz, py, px = points[p, 0], points[p, 1], points[p, 2]
+        z0, z1 = max(int(math.floor(pz - radius)) - 1, 0), min(int(math.ceil(pz + radius)) + 2, nz)
+        y0, y1 = max(int(math.floor(py - radius)) - 1, 0), min(int(math.ceil(py + radius)) + 2, ny)
+        x0, x1 = max(int(math.floor(px - radius)) - 1, 0), min(int(math.ceil(px + radius)) + 2, nx)
+        for i in range(z0, z1):
+            for j in range(y0, y1):
+                for k in range(x0, x1):
+                    if lab[i, j, k] != SOLID:
+                        continue
+                    for ax in range(3):
+                        for sgn in (-1, 1):
+                            ii, jj, kk = i, j, k
+                            if ax == 0:
+                                ii += sgn
+                            elif ax == 1:
+                                jj += sgn
+                            else:
+                                kk += sgn
+                            if not (0 <= ii < nz and 0 <= jj < ny and 0 <= kk < nx):
+                                continue
+                            code = lab[ii, jj, kk]
+                            if code != WETTING and code != NONWETTING:
+                                continue
+                            cz, cy, cx = 0.5 * (i + ii), 0.5 * (j + jj), 0.5 * (k + kk)
+                            dz, dy, dx = cz - pz, cy - py, cx - px
+                            if dz * dz + dy * dy + dx * dx > r2:
+                                continue
+                            o = out[p]
+                            o[0] += 1.0
+                            o[1] += cz
+                            o[2] += cy
+                            o[3] += cx
+                            o[4] += cz * cz
+                            o[5] += cz * cy
+                            o[6] += cz * cx
+                            o[7] += cy * cy
+                            o[8] += cy * cx
+                            o[9] += cx * cx
+                            o[10 + ax] += sgn
+    return out
 
 
-def _cluster_angles(lab, cl, k, box, sigma, spacing, fit_radius, band, chunks=None) -> dict:
-    """Contact-line angles of cluster ``k`` in its padded bounding box (voxel coordinates of the
-    box): points, angles, vertices per fit, unresolved mask and the n–w area (voxel²).
-
-    With ``chunks`` (core edge, voxels), a box larger than that is processed core by core, each
-    with a halo of :func:`_chunk_halo` voxels; a point belongs to the core holding the corner of
-    its thinning cell, an n–w face to the core holding its centroid."""
-    shape = np.array([s.stop - s.start for s in box])
-    if chunks is None or np.all(shape <= chunks):
-        return _region_angles(lab, cl, k, box, np.zeros(3, int), shape, np.zeros(3, int), shape,
-                              sigma, spacing, fit_radius, band)
-    halo = _chunk_halo(sigma, spacing, fit_radius, band)
-    parts = []
-    for lo in itertools.product(*(range(0, n, chunks) for n in shape)):
-        lo = np.array(lo)
-        hi = np.minimum(lo + chunks, shape)
-        parts.append(_region_angles(lab, cl, k, box, lo, hi, np.maximum(lo - halo, 0),
-                                    np.minimum(hi + halo, shape), sigma, spacing, fit_radius, band))
-    if all(p["speck"] for p in parts):
-        return _no_points(0.0, unresolved=True)
-    cell = np.concatenate([p["cell"] for p in parts])
-    order = np.lexsort(cell.T[::-1]) if len(cell) else np.zeros(0, int)
-    return {"pts": np.concatenate([p["pts"] for p in parts])[order],
-            "theta": np.concatenate([p["theta"] for p in parts])[order],
-            "n_fit": np.concatenate([p["n_fit"] for p in parts])[order],
-            "unresolved": np.concatenate([p["unresolved"] for p in parts])[order],
-            "area_nw": float(sum(p["area_nw"] for p in parts)), "speck": False, "cell": cell[order]}
+def _solid_planes(points: np.ndarray, lab: np.ndarray, radius: float):
+    """Least-squares tangent plane of the solid surface near each point: the centroid and the
+    smallest principal axis of the solid–fluid voxel-face centres within ``radius`` (box voxels),
+    the normal oriented out of the solid; valid where at least 6 faces were found."""
+    s = _face_sums(np.ascontiguousarray(points, np.float64), lab, float(radius))
+    cnt = np.maximum(s[:, 0], 1.0)
+    centre = s[:, 1:4] / cnt[:, None]
+    iu = np.array([[4, 5, 6], [5, 7, 8], [6, 8, 9]])
+    cov = s[:, iu] / cnt[:, None, None] - centre[:, :, None] * centre[:, None, :]
+    _, vecs = np.linalg.eigh(cov)
+    normal = vecs[:, :, 0]
+    normal *= np.sign(np.sum(normal * s[:, 10:13], axis=1, keepdims=True) + 1e-300)
+    return centre, normal, s[:, 0] >= 6
 
 
-def _chunk_halo(sigma: float, spacing: float, fit_radius: float, band) -> int:
-    """Voxels of context around a core so that everything its points and faces use is the same as
-    in the whole box: points reach ``spacing`` past the core, their fits ``fit_radius`` and the
-    solid planes max(4, 3σ) further; a vertex there needs its distance to solid within band[1]
-    and its 10 Taubin rings (≤ 2 voxels each, generous) plus one cube, on a field blurred with a
-    4σ kernel."""
-    reach = spacing + max(fit_radius, 4.0, 3 * sigma) + 1
-    return int(math.ceil(reach + max(2 * TAUBIN_ITERATIONS + 1 + math.ceil(4 * sigma + 0.5),
-                                     band[1] + 1))) + 2
+def _unit(v: np.ndarray) -> np.ndarray:
+    return v / np.maximum(np.linalg.norm(v, axis=1), 1e-30)[:, None]
 
 
-def _region_angles(lab, cl, k, box, core_lo, core_hi, lo, hi, sigma, spacing, fit_radius,
-                   band) -> dict:
-    """:func:`_cluster_angles` on the part ``lo:hi`` of the box (box voxels), keeping the points
-    and n–w faces owned by the core ``core_lo:core_hi``; results in box coordinates."""
-    region = tuple(slice(s.start + int(a), s.start + int(b))
-                   for s, a, b in zip(box, lo, hi, strict=True))
-    offset = lo.astype(float)
-    sub = lab[region]
-    n_ind = cl[region] == k
-    s_ind = sub == SOLID
-    fluid = n_ind | (sub == WETTING) | (sub == NONWETTING)
-    del sub
-    gn = ndimage.gaussian_filter(n_ind.astype(np.float32), sigma, mode="nearest")
-    del n_ind
-    if gn.max() <= 0.5:  # a speck that smoothing erases: no surface to fit
-        return _no_points(0.0, unresolved=True)
-    gs = ndimage.gaussian_filter(s_ind.astype(np.float32), sigma, mode="nearest")
-    gf = ndimage.gaussian_filter(fluid.astype(np.float32), sigma, mode="nearest")
-    del fluid
-    nv, nf, nn = _mesh(gn, toward_high=True)  # ν_{w→n}: up the n indicator
-    # distance of the n-mesh vertices from the solid boundary (voxel centres are 1/2 off it)
-    if s_ind.any():
-        d_solid = _distance_to(s_ind)
-        d_solid -= 0.5                   # in place: no second full-box float64 temporary
-        d_solid = d_solid.astype(np.float32)
-        ds_n = _sample(d_solid, nv)
-        del d_solid
-    else:
-        ds_n = np.full(len(nv), np.inf, np.float32)
-    own_face = _owned(nv[nf].mean(axis=1) + offset, core_lo, core_hi)
-    area_nw = _nw_area(nv, nf[own_face], ds_n)
-    # ν_s: down the solid indicator, into the pore; meshed only within the blur's reach (4σ) of
-    # the cluster, where its contact line can be
-    near = gn > 0
-    if not ((gs[near] > 0.5).any() and (gs[near] < 0.5).any()):
-        return _no_points(area_nw)
-    sv, sf, sn = _mesh(gs, toward_high=False, mask=near)
-    del gs, near
-    with np.errstate(invalid="ignore", divide="ignore"):
-        frac = _sample(gn, sv) / _sample(gf, sv)
-    del gn, gf
-    pts, cell = _contact_points(sv, sf, frac, spacing, offset)
-    own = _owned(cell * spacing, core_lo, core_hi)
-    pts, cell = pts[own], cell[own]
-    if len(pts) == 0:
-        return _no_points(area_nw)
-    local = pts - offset
-    in_band = (ds_n >= band[0]) & (ds_n <= band[1])
-    if not in_band.any():
-        return {"pts": pts, "theta": np.full(len(pts), np.nan), "n_fit": np.zeros(len(pts), int),
-                "unresolved": np.ones(len(pts), bool), "area_nw": area_nw, "speck": False,
-                "cell": cell}
-    beta, frame, count, span = _fit_quadrics(local, nv[in_band], nn[in_band], ds_n[in_band],
-                                             fit_radius, _SLOPE_SCALE)
+def box_contact_angles(*, verts, edges, d, nu, vnorm, v_bad, lab, origin, own_lo, own_hi, sigma,
+                       spacing, fit_radius, band) -> dict:
+    """Contact-line points of one cluster's n mesh in one box, and their angles.
+
+    Parameters (keyword only; as passed by :func:`wetpath._mesh.mesh_sums`)
+    ----------
+    verts, edges : ndarray
+        Taubin-smoothed vertices (box voxel coordinates) and unique edges of the cluster's mesh.
+    d, nu : ndarray
+        Wall distance (voxels, positive in the pore) and unit solid normal at the vertices.
+    vnorm : ndarray
+        Unit vertex normals pointing out of n.
+    v_bad : ndarray of bool
+        Vertices of faces on the array or field-of-view border (left out).
+    lab : ndarray of uint8
+        Phase codes of the box.
+    origin, own_lo, own_hi : ndarray
+        Array coordinates of the box origin and of the owned core ``[own_lo, own_hi)``.
+    sigma, spacing, fit_radius, band
+        As in :func:`geometric_angles`.
+
+    Returns
+    -------
+    dict
+        ``pts`` (array coordinates, where the fits meet; the foot point where the angle is NaN),
+        ``theta`` (degrees), ``n_fit``, ``unresolved`` and ``cell`` (thinning cell), in cell order.
+    """
+    m0 = band[0]
+    a, b = edges[:, 0], edges[:, 1]
+    fa, fb = d[a] - m0, d[b] - m0
+    cross = (fa * fb < 0) & ~v_bad[a] & ~v_bad[b]
+    a, b, fa, fb = a[cross], b[cross], fa[cross], fb[cross]
+    t = (fa / (fa - fb))[:, None]
+    above = verts[a] * (1 - t) + verts[b] * t
+    foot = above - m0 * _unit(nu[a] * (1 - t) + nu[b] * t)   # down to the solid surface, d = 0
+    pts = foot + origin
+    cell = np.floor(pts / spacing).astype(np.int64)
+    own = np.all((cell * spacing >= own_lo) & (cell * spacing < own_hi), axis=1)
+    pts, cell, foot = pts[own], cell[own], foot[own]
+    # one point per cell: the first in (z, y, x) order, whatever the order of the mesh
+    order = np.lexsort((pts[:, 2], pts[:, 1], pts[:, 0], cell[:, 2], cell[:, 1], cell[:, 0]))
+    pts, cell, foot = pts[order], cell[order], foot[order]
+    first = np.ones(len(pts), bool)
+    first[1:] = np.any(cell[1:] != cell[:-1], axis=1)
+    pts, cell, foot = pts[first], cell[first], foot[first]
+    n = len(pts)
+    out = {"pts": pts, "theta": np.full(n, np.nan), "n_fit": np.zeros(n, np.int64),
+           "unresolved": np.ones(n, bool), "cell": cell}
+    fit = ~v_bad & (d >= band[0]) & (d <= band[1])
+    if n == 0 or not fit.any():
+        return out
+    # ν_{w→n} points into n: against the mesh normals
+    beta, frame, count, span = _fit_quadrics(foot, verts[fit], -vnorm[fit], d[fit], fit_radius,
+                                             _SLOPE_SCALE)
     unresolved = (span < _MIN_SPAN) | (count < _MIN_FIT)
-    centre, nu_s, plane_ok = _solid_planes(local, cKDTree(sv), sv, _sample_normals(sv, sn, local),
-                                           max(4.0, 3 * sigma))
-    where, nu_wn, cut_ok = _intersect(local, beta, frame, centre, nu_s, max_step=fit_radius)
+    centre, nu_s, plane_ok = _solid_planes(foot, lab, max(4.0, 3 * sigma))
+    where, nu_wn, cut_ok = _intersect(foot, beta, frame, centre, nu_s, max_step=fit_radius)
     cos = np.clip(np.sum(nu_s * nu_wn, axis=1), -1, 1)
     theta = np.where(~unresolved & plane_ok & cut_ok, np.degrees(np.arccos(cos)), np.nan)
-    return {"pts": np.where(np.isfinite(theta)[:, None], where + offset, pts), "theta": theta,
-            "n_fit": count, "unresolved": unresolved, "area_nw": area_nw, "speck": False,
-            "cell": cell}
+    out.update(pts=np.where(np.isfinite(theta)[:, None], where + origin, pts), theta=theta,
+               n_fit=count, unresolved=unresolved)
+    return out
 
 
-def _owned(x: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
-    """Rows of ``x`` (box voxels) inside the core ``[lo, hi)``."""
-    return np.all((x >= lo) & (x < hi), axis=1)
+def _cluster_points(parts: list[dict]) -> dict:
+    """The points of one cluster gathered from its boxes, in cell order; ``has_mesh``: any box
+    had a mesh; ``touches_solid``: any face of it lies on the solid."""
+    contact = [p["contact"] for p in parts if "contact" in p]
+    keys = ("pts", "theta", "n_fit", "unresolved", "cell")
+    if contact:
+        res = {k: np.concatenate([c[k] for c in contact]) for k in keys}
+        order = np.lexsort(res["cell"].T[::-1])
+        res = {k: v[order] for k, v in res.items()}
+    else:
+        res = {"pts": np.zeros((0, 3)), "theta": np.zeros(0), "n_fit": np.zeros(0, np.int64),
+               "unresolved": np.zeros(0, bool), "cell": np.zeros((0, 3), np.int64)}
+    res["area_nw"] = float(sum(p["Anw_raw"] for p in parts))
+    res["has_mesh"] = bool(contact)
+    res["touches_solid"] = any(p["Ans_raw"] > 0 for p in parts)
+    return res
 
-
-def _distance_to(feature: np.ndarray) -> np.ndarray:
-    """Exact Euclidean distance (voxels) of every voxel to the nearest ``True`` voxel, by the
-    compiled separable transform of :mod:`wetpath._mesh`; equals
-    ``ndimage.distance_transform_edt(~feature)`` (the test oracle)."""
-    d = squared_distance(feature, float(np.sqrt(np.sum(np.square(feature.shape)))))
-    return np.sqrt(d, out=d)
-
-
-def _sample_normals(verts, normals, pts):
-    """Normal of the nearest mesh vertex to each point (used only to orient plane fits)."""
-    _, idx = cKDTree(verts).query(pts)
-    return normals[idx]
-
-
-def _nw_area(verts, faces, d_solid) -> float:
-    """Area (voxel²) of the n-mesh faces more than one voxel from the solid: the n–w interface."""
-    tri = verts[faces]
-    area = 0.5 * np.linalg.norm(np.cross(tri[:, 1] - tri[:, 0], tri[:, 2] - tri[:, 0]), axis=1)
-    if d_solid is None:
-        return float(area.sum())
-    return float(area[d_solid[faces].mean(axis=1) > 1.0].sum())
-
-
-def _cluster_table(res: dict, k: int, box, voxel_size: float, min_area: float) -> pd.DataFrame:
+def _cluster_table(res: dict, k: int, voxel_size: float, min_area: float) -> pd.DataFrame:
     """Rows of one cluster: its points, or one row saying why it has no angle."""
     is_small = bool(res["area_nw"] < min_area)
     has_line = len(res["pts"]) > 0
+    # no point: a speck erased by smoothing, or an interface that never rises above the crease
+    # (both unresolved), or a cluster that does not touch the solid (no contact line)
+    unresolvable = not res["has_mesh"] or res["touches_solid"]
     if not has_line:
         res.update(pts=np.full((1, 3), np.nan), theta=np.array([np.nan]),
-                   n_fit=np.zeros(1, int), unresolved=np.array([res["speck"]]))
-    xyz = (res["pts"] + np.array([s.start for s in box], float)) * voxel_size
+                   n_fit=np.zeros(1, int), unresolved=np.array([unresolvable]))
+    xyz = res["pts"] * voxel_size
     nan = ~np.isfinite(res["theta"])
     return pd.DataFrame({
         "cluster": k, "z": xyz[:, 0], "y": xyz[:, 1], "x": xyz[:, 2],
         "theta_deg": res["theta"], "n_fit": res["n_fit"], "area_nw_vox2": res["area_nw"],
-        "flag_no_contact_line": not has_line and not res["speck"],
+        "flag_no_contact_line": not has_line and not unresolvable,
         "flag_unresolved": res["unresolved"],
         "flag_fit_failed": has_line & nan & ~res["unresolved"],
         "flag_small_interface": is_small})
@@ -531,7 +466,8 @@ def geometric_angles(labels: np.ndarray, voxel_size: float = 1.0, *,
         the whole volume). None: each box whole. The points and angles equal the whole-box ones
         up to the order of floating-point summation.
     threads : int, optional
-        Worker threads over clusters (None: all cores); the result does not depend on it.
+        Worker threads over chunks or clusters (None: all cores); the result does not depend on
+        it.
 
     Returns
     -------
@@ -541,7 +477,8 @@ def geometric_angles(labels: np.ndarray, voxel_size: float = 1.0, *,
         ``n_fit`` (n–w vertices in the fit), ``area_nw_vox2`` (the cluster's n–w area),
         ``flag_no_contact_line`` (a cluster without contact line gets one row with NaN angle),
         ``flag_unresolved`` (NaN angle: the fitted n–w patch spans less than 1.5 voxels of
-        distance from the solid, e.g. a cap only ~4 voxels high, or a speck erased by smoothing),
+        distance from the solid, e.g. a cap only ~4 voxels high; a cluster on the solid whose
+        interface never rises 2.5σ above it; or a speck erased by smoothing),
         ``flag_fit_failed`` (NaN angle: no solid plane or no intersection near the point) and
         ``flag_small_interface``.
 
@@ -557,6 +494,23 @@ def geometric_angles(labels: np.ndarray, voxel_size: float = 1.0, *,
     Khanamiri, H. H., Slotte, P. A. & Berg, C. F. (2020). *Transp. Porous Media* 135, 735–751.
     Taubin, G. (1995). *Proc. SIGGRAPH '95*, 351–358.
     """
+    return mesh_and_angles(labels, voxel_size, codes=codes, clusters=clusters, sigma=sigma,
+                           spacing=spacing, fit_radius=fit_radius, band=band,
+                           min_interface_vox2=min_interface_vox2, chunks=chunks,
+                           threads=threads)[1]
+
+
+def mesh_and_angles(labels: np.ndarray, voxel_size: float = 1.0, *,
+                    codes: PhaseCodes | dict | None = None, clusters: np.ndarray | None = None,
+                    sigma: float = 1.0, spacing: float = 3.0, fit_radius: float = 10.0,
+                    band: tuple[float, float] | None = None, min_interface_vox2: float = 1000.0,
+                    chunks: int | None = None, threads: int | None = None
+                    ) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """:func:`wetpath._mesh.mesh_measures` and :func:`geometric_angles` from one meshing pass.
+
+    Parameters as in :func:`geometric_angles`. Returns the mesh-measures table (one row per
+    cluster) and the contact-point table.
+    """
     if np.ndim(voxel_size) != 0 or not voxel_size > 0:
         raise WetpathError(f"voxel_size must be one positive number (isotropic voxels), got "
                            f"{voxel_size!r}", step=_STEP)
@@ -569,35 +523,26 @@ def geometric_angles(labels: np.ndarray, voxel_size: float = 1.0, *,
         raise WetpathError(f"clusters has shape {np.shape(clusters)} but labels {lab.shape}",
                            step=_STEP)
     band = (2.5 * sigma, 9.0) if band is None else band
-    # the fits use the cluster's own vertices (inside its box); the margin only has to hold the
-    # blur (4σ), the solid planes near the line and the solid within band[1] of the interface
-    pad = int(math.ceil(max(band[1], 4 * sigma + 4))) + 2
-    boxes = {k: tuple(slice(max(s.start - pad, 0), min(s.stop + pad, n))
-                      for s, n in zip(sl, lab.shape, strict=True))
-             for k, sl in enumerate(ndimage.find_objects(clusters), start=1) if sl is not None}
-
-    def one(k):
-        return _cluster_table(_cluster_angles(lab, clusters, k, boxes[k], sigma, spacing,
-                                              fit_radius, band, chunks),
-                              k, boxes[k], voxel_size, min_interface_vox2)
-
-    # largest boxes first so that the threads finish together; the table keeps cluster order
-    order = sorted(boxes, key=lambda k: -math.prod(s.stop - s.start for s in boxes[k]))
-    nthreads = resolve_threads(threads)
-    if nthreads == 1 or len(order) < 2:
-        done = {k: one(k) for k in order}
-    else:
-        with ThreadPoolExecutor(nthreads) as pool:
-            done = dict(zip(order, pool.map(one, order), strict=True))
-    frames = [done[k] for k in boxes]
+    contact = functools.partial(box_contact_angles, sigma=sigma, spacing=spacing,
+                                fit_radius=fit_radius, band=band)
+    # an owned point lies up to ``spacing`` past the core; its fit reaches ``fit_radius`` further
+    acc, ncl, levels = mesh_sums(lab, clusters=clusters, sigma=sigma, chunks=chunks,
+                                 threads=resolve_threads(threads), contact=contact,
+                                 reach=spacing + fit_radius + 1)
+    if ncl == 0:
+        return (mesh_measures(lab, voxel_size, clusters=clusters, sigma=sigma),
+                pd.DataFrame({c: pd.Series(dtype=float) for c in _COLUMNS}))
+    table = finish_mesh(acc, ncl, levels, sigma, float(voxel_size))
+    frames = [_cluster_table(_cluster_points(acc.get(k, [])), k, voxel_size, min_interface_vox2)
+              for k in range(1, ncl + 1) if k in acc]
     small = [bool(f["flag_small_interface"].iloc[0]) for f in frames]
     if any(small):
         warnings.warn(f"{sum(small)} cluster(s) have an n–w interface below "
                       f"{min_interface_vox2:g} voxel²; their geometric angles are unreliable "
-                      "(Khanamiri et al. 2020)", stacklevel=2)
+                      "(Khanamiri et al. 2020)", stacklevel=3)
     if not frames:
-        return pd.DataFrame({c: pd.Series(dtype=float) for c in _COLUMNS})
-    return pd.concat(frames, ignore_index=True)[_COLUMNS]
+        return table, pd.DataFrame({c: pd.Series(dtype=float) for c in _COLUMNS})
+    return table, pd.concat(frames, ignore_index=True)[_COLUMNS]
 
 
 def _summary(theta: np.ndarray) -> dict:

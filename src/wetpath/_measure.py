@@ -77,17 +77,34 @@ def measure_clusters(labels, voxel_size: float = 1.0, *, codes: PhaseCodes | Map
         curvature_nw_std`` (1/length), ``curv_area_nw, curv_weight_nw``, ``gauss_nw`` (rad),
         ``euler_n, contact_loops, contact_length`` (length), ``touches_border, resolved``.
     """
-    from ._clusters import cluster_lattice_measures, label_clusters
-    from ._mesh import mesh_measures
+    from ._clusters import label_clusters
 
     h = _voxel_length(voxel_size)
     labels = _prepare(labels, codes)
     if clusters is None:
         clusters, _ = label_clusters(labels, connectivity=connectivity, chunks=chunks, threads=threads)
-    lat = cluster_lattice_measures(labels, clusters, h)
-    mesh = mesh_measures(labels, h, clusters=clusters, connectivity=connectivity, sigma=sigma,
-                         chunks=chunks, threads=threads)
-    return lat.merge(mesh, on="cluster", how="left", suffixes=("", "_mesh_dup"))
+    return cluster_tables(labels, h, clusters, sigma=sigma, chunks=chunks, threads=threads)[0]
+
+
+def cluster_tables(labels: np.ndarray, voxel_size: float, clusters: np.ndarray, *,
+                   sigma: float = 1.0, chunks: int | None = None, threads: int | None = None,
+                   geometric: bool = False) -> tuple[pd.DataFrame, pd.DataFrame | None]:
+    """The per-cluster table of :func:`measure_clusters` (canonical labels, given clusters) and,
+    with ``geometric``, the contact-point table of :func:`wetpath.geometric_angles` from the same
+    meshes (one meshing pass instead of two)."""
+    from ._clusters import cluster_lattice_measures
+    from ._geometric import mesh_and_angles
+    from ._mesh import mesh_measures
+
+    lat = cluster_lattice_measures(labels, clusters, voxel_size)
+    points = None
+    if geometric:
+        mesh, points = mesh_and_angles(labels, voxel_size, clusters=clusters, sigma=sigma,
+                                       chunks=chunks, threads=threads)
+    else:
+        mesh = mesh_measures(labels, voxel_size, clusters=clusters, sigma=sigma, chunks=chunks,
+                             threads=threads)
+    return lat.merge(mesh, on="cluster", how="left", suffixes=("", "_mesh_dup")), points
 
 
 def state_from_clusters(lattice: Mapping, clusters: pd.DataFrame) -> dict:

@@ -58,15 +58,15 @@ porous media: a Gauss–Bonnet approach. *J. Colloid Interface Sci.* 576, 99–1
 
 from __future__ import annotations
 
+import functools
 import math
 import os
-import threading
 from concurrent.futures import ThreadPoolExecutor
 
 import numba
 import numpy as np
 import pandas as pd
-from numba import njit, prange
+from numba import njit
 from scipy import ndimage, sparse
 from scipy.sparse.csgraph import connected_components
 from skimage.measure import marching_cubes
@@ -96,9 +96,10 @@ def band_levels(sigma: float) -> np.ndarray:
     return BAND_START * sigma + np.linspace(0.0, BAND_WIDTH, BAND_LEVELS)
 
 
-def _halo(sigma: float) -> int:
-    """Voxels of context that keep owned elements identical: blur, 20 smoothing rings, distances."""
-    return int(math.ceil(4 * sigma)) + HALO_EXTRA
+def _halo(sigma: float, reach: float = 0.0) -> int:
+    """Voxels of context that keep owned elements identical: blur, 20 smoothing rings, distances;
+    plus ``reach`` for elements that look further (the geometric angles' fits)."""
+    return int(math.ceil(4 * sigma)) + HALO_EXTRA + int(math.ceil(reach))
 
 
 def _pad(sigma: float) -> int:
@@ -139,50 +140,81 @@ def _edt_line(f, out, v, z):
         out[q] = (q - v[k]) * (q - v[k]) + f[v[k]]
 
 
-@njit(cache=True, nogil=True, parallel=True)
-def _edt_pass(d):
-    """One separable pass of the squared distance transform along the last axis of ``d`` (a view
-    in any layout), in place, parallel over the first axis."""
-    n0, n1, n = d.shape
-    for i in prange(n0):
-        f, out = np.empty(n), np.empty(n)
-        v, z = np.empty(n, np.int64), np.empty(n + 1)
-        for j in range(n1):
-            for q in range(n):
-                f[q] = d[i, j, q]
-            _edt_line(f, out, v, z)
-            for q in range(n):
-                d[i, j, q] = out[q]
+_EDT_BLOCK = 16   # lines transformed together along a strided axis (one cache line of float32)
 
 
-def _sq_edt(feature: np.ndarray, big: float) -> np.ndarray:
-    """Squared Euclidean distance (voxels²) of every voxel to the nearest ``True`` voxel of
-    ``feature``, capped at ``big``: three separable passes (x, y, z)."""
-    d = np.where(feature, 0.0, big)
+@njit(cache=True, nogil=True)
+def _edt_axis(d, axis, lo, hi):  # pragma: no cover
+    """One separable pass of the squared distance transform of ``d`` (C-ordered, 3-D) along
+    ``axis``, in place, for outer indices ``lo:hi`` (of axis 0, or of axis 1 when ``axis`` is 0).
+    Lines along a strided axis are gathered ``_EDT_BLOCK`` at a time so that every read and write
+    touches whole cache lines."""
+    n0, n1, n2 = d.shape
+    n = d.shape[axis]
+    f = np.empty(n)
+    out = np.empty(n)
+    v = np.empty(n, np.int64)
+    z = np.empty(n + 1)
+    if axis == 2:
+        for i in range(lo, hi):
+            for j in range(n1):
+                for q in range(n):
+                    f[q] = d[i, j, q]
+                _edt_line(f, out, v, z)
+                for q in range(n):
+                    d[i, j, q] = out[q]
+        return
+    buf = np.empty((n, _EDT_BLOCK), d.dtype)
+    for o in range(lo, hi):
+        for k0 in range(0, n2, _EDT_BLOCK):
+            nb = min(_EDT_BLOCK, n2 - k0)
+            for q in range(n):
+                for b in range(nb):
+                    buf[q, b] = d[o, q, k0 + b] if axis == 1 else d[q, o, k0 + b]
+            for b in range(nb):
+                for q in range(n):
+                    f[q] = buf[q, b]
+                _edt_line(f, out, v, z)
+                for q in range(n):
+                    buf[q, b] = out[q]
+            for q in range(n):
+                for b in range(nb):
+                    if axis == 1:
+                        d[o, q, k0 + b] = buf[q, b]
+                    else:
+                        d[q, o, k0 + b] = buf[q, b]
+
+
+def _sq_edt(feature: np.ndarray, big: float, threads: int = 1) -> np.ndarray:
+    """Squared Euclidean distance (voxels², float32) of every voxel to the nearest ``True`` voxel
+    of ``feature``, capped at ``big``: three separable passes (x, y, z), each split over
+    ``threads`` threads (the kernel releases the GIL)."""
+    d = np.where(feature, np.float32(0.0), np.float32(big))
     for axis in (2, 1, 0):
-        _edt_pass(np.moveaxis(d, axis, -1))
-    return np.minimum(d, big, out=d)
+        outer = d.shape[1] if axis == 0 else d.shape[0]
+        cuts = np.linspace(0, outer, max(1, min(threads, outer)) + 1).astype(int)
+        parts = list(zip(cuts[:-1], cuts[1:], strict=True))
+        if len(parts) == 1:
+            _edt_axis(d, axis, 0, outer)
+        else:
+            with ThreadPoolExecutor(len(parts)) as pool:
+                list(pool.map(lambda p, ax=axis: _edt_axis(d, ax, p[0], p[1]), parts))
+    return np.minimum(d, np.float32(big), out=d)
 
 
-_EDT_LOCK = threading.Lock()
+def squared_distance(feature: np.ndarray, cap: float, threads: int = 1) -> np.ndarray:
+    """Squared distance (voxels², float32) to the nearest ``True`` voxel, exact below ``cap``
+    (voxels; squared distances are integers, exact in float32 up to 2²⁴)."""
+    return _sq_edt(np.ascontiguousarray(feature, dtype=np.bool_), float(cap) ** 2 + 1.0,
+                   threads)
 
 
-def squared_distance(feature: np.ndarray, cap: float) -> np.ndarray:
-    """Squared distance (voxels²) to the nearest ``True`` voxel, exact below ``cap`` (voxels).
-
-    The compiled transform is itself parallel; a lock keeps worker threads from launching
-    parallel kernels concurrently (numba's default threading layer does not allow that).
-    """
-    with _EDT_LOCK:
-        return _sq_edt(np.ascontiguousarray(feature, dtype=np.bool_), float(cap) ** 2 + 1.0)
-
-
-@njit(cache=True, nogil=True, parallel=True)
+@njit(cache=True, nogil=True)
 def _signed_distance(d_out2, d_in2, solid, clip):
     """0.5 − √d_in² in the solid, √d_out² − 0.5 in the pore, clipped to ±clip (float32)."""
     nz, ny, nx = solid.shape
     out = np.empty((nz, ny, nx), np.float32)
-    for i in prange(nz):
+    for i in range(nz):
         for j in range(ny):
             for k in range(nx):
                 if solid[i, j, k]:
@@ -193,9 +225,10 @@ def _signed_distance(d_out2, d_in2, solid, clip):
     return out
 
 
-def wall_distance(solid: np.ndarray, clip: float) -> np.ndarray:
+def wall_distance(solid: np.ndarray, clip: float, threads: int = 1) -> np.ndarray:
     """Signed distance (voxels) to the voxelised solid surface, positive in the pore, clipped to
-    ±``clip`` and smoothed by a Gaussian of 1 voxel (removes the staircase of tilted walls).
+    ±``clip`` and smoothed by a Gaussian of 1 voxel (removes the staircase of tilted walls); the
+    transforms run on ``threads`` threads.
 
     The zero level lies half-way between solid and pore voxel centres (exact Euclidean distance
     transform of Felzenszwalb & Huttenlocher 2012; test oracle
@@ -206,10 +239,9 @@ def wall_distance(solid: np.ndarray, clip: float) -> np.ndarray:
         if solid.all():
             out[...] = -clip
         else:
-            d_out2 = squared_distance(solid, clip + 2.0)
-            d_in2 = squared_distance(~solid, clip + 2.0)
-            with _EDT_LOCK:
-                out = _signed_distance(d_out2, d_in2, solid, clip)
+            d_out2 = squared_distance(solid, clip + 2.0, threads)
+            d_in2 = squared_distance(~solid, clip + 2.0, threads)
+            out = _signed_distance(d_out2, d_in2, solid, clip)
     return ndimage.gaussian_filter(out, 1.0, mode="nearest")
 
 
@@ -218,8 +250,15 @@ def wall_distance(solid: np.ndarray, clip: float) -> np.ndarray:
 
 
 def _edges(faces: np.ndarray, nv: int):
-    """Unique undirected edges (E, 2) and the edge index of each face side (F, 3); side k joins
-    corner k and corner k+1."""
+    """Unique undirected edges (E, 2), sorted, and the edge index of each face side (F, 3); side k
+    joins corner k and corner k+1 (compiled; equals :func:`_edges_reference`)."""
+    if len(faces) == 0:
+        return np.zeros((0, 2), np.int64), np.zeros((0, 3), np.int64)
+    return _edges_kernel(np.ascontiguousarray(faces, np.int64), int(nv))
+
+
+def _edges_reference(faces: np.ndarray, nv: int):
+    """Plain numpy oracle of :func:`_edges`."""
     a = faces.ravel()
     b = faces[:, [1, 2, 0]].ravel()
     lo, hi = np.minimum(a, b).astype(np.int64), np.maximum(a, b).astype(np.int64)
@@ -562,17 +601,181 @@ def smoothed_mesh(indicator: np.ndarray, sigma: float = 1.0):
     return verts0, verts, faces
 
 
+@njit(cache=True, nogil=True)
+def _edges_kernel(faces, nv):  # pragma: no cover
+    """Compiled :func:`_edges_reference`: unique edges in (low, high) order, by counting sort on
+    the low vertex and an insertion sort of each vertex's few high neighbours."""
+    nf = faces.shape[0]
+    start = np.zeros(nv + 1, np.int64)
+    for f in range(nf):
+        for k in range(3):
+            start[min(faces[f, k], faces[f, (k + 1) % 3]) + 1] += 1
+    for i in range(nv):
+        start[i + 1] += start[i]
+    high = np.empty(3 * nf, np.int64)
+    side = np.empty(3 * nf, np.int64)
+    fill = start[:-1].copy()
+    for f in range(nf):
+        for k in range(3):
+            a, b = faces[f, k], faces[f, (k + 1) % 3]
+            lo = min(a, b)
+            high[fill[lo]] = max(a, b)
+            side[fill[lo]] = 3 * f + k
+            fill[lo] += 1
+    edges = np.empty((3 * nf, 2), np.int64)
+    face_edges = np.empty(3 * nf, np.int64)
+    ne = 0
+    for v in range(nv):
+        s, e = start[v], start[v + 1]
+        for i in range(s + 1, e):
+            h, sd = high[i], side[i]
+            j = i - 1
+            while j >= s and high[j] > h:
+                high[j + 1] = high[j]
+                side[j + 1] = side[j]
+                j -= 1
+            high[j + 1] = h
+            side[j + 1] = sd
+        prev = -1
+        for i in range(s, e):
+            if high[i] != prev:
+                edges[ne, 0] = v
+                edges[ne, 1] = high[i]
+                ne += 1
+                prev = high[i]
+            face_edges[side[i]] = ne - 1
+    return edges[:ne].copy(), face_edges.reshape(nf, 3)
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _trilinear(field, z, y, x):  # pragma: no cover
+    """Trilinear interpolation at (z, y, x), edge values continued beyond the array (as
+    ``scipy.ndimage.map_coordinates(order=1, mode="nearest")``)."""
+    nz, ny, nx = field.shape
+    z = min(max(z, 0.0), nz - 1.0)
+    y = min(max(y, 0.0), ny - 1.0)
+    x = min(max(x, 0.0), nx - 1.0)
+    i, j, k = min(int(z), nz - 2), min(int(y), ny - 2), min(int(x), nx - 2)
+    i, j, k = max(i, 0), max(j, 0), max(k, 0)
+    tz, ty, tx = z - i, y - j, x - k
+    i1, j1, k1 = min(i + 1, nz - 1), min(j + 1, ny - 1), min(k + 1, nx - 1)
+    c00 = field[i, j, k] * (1 - tx) + field[i, j, k1] * tx
+    c01 = field[i, j1, k] * (1 - tx) + field[i, j1, k1] * tx
+    c10 = field[i1, j, k] * (1 - tx) + field[i1, j, k1] * tx
+    c11 = field[i1, j1, k] * (1 - tx) + field[i1, j1, k1] * tx
+    return (c00 * (1 - ty) + c01 * ty) * (1 - tz) + (c10 * (1 - ty) + c11 * ty) * tz
+
+
+@njit(cache=True, nogil=True)
+def _sample_kernel(field, pts):  # pragma: no cover
+    """Trilinear value at each point and the central difference of it over one voxel along each
+    axis (oracle: :func:`_sample_reference`)."""
+    n = pts.shape[0]
+    val = np.empty(n)
+    grad = np.empty((n, 3))
+    for p in range(n):
+        z, y, x = pts[p, 0], pts[p, 1], pts[p, 2]
+        val[p] = _trilinear(field, z, y, x)
+        grad[p, 0] = _trilinear(field, z + 0.5, y, x) - _trilinear(field, z - 0.5, y, x)
+        grad[p, 1] = _trilinear(field, z, y + 0.5, x) - _trilinear(field, z, y - 0.5, x)
+        grad[p, 2] = _trilinear(field, z, y, x + 0.5) - _trilinear(field, z, y, x - 0.5)
+    return val, grad
+
+
+def _sample_reference(field: np.ndarray, pts: np.ndarray):
+    """Plain scipy oracle of :func:`_sample_kernel` (which interpolates in float64)."""
+    field = field.astype(np.float64)
+    val = ndimage.map_coordinates(field, pts.T, order=1, mode="nearest")
+    grad = np.empty_like(pts)
+    for ax in range(3):
+        step = np.zeros(3)
+        step[ax] = 0.5
+        grad[:, ax] = (ndimage.map_coordinates(field, (pts + step).T, order=1, mode="nearest")
+                       - ndimage.map_coordinates(field, (pts - step).T, order=1, mode="nearest"))
+    return val, grad
+
+
+@njit(cache=True, nogil=True)
+def _owned_kernel(g0, faces, edges, own_lo, own_hi):  # pragma: no cover
+    """Ownership of vertices, faces (centroid) and edges (midpoint) of the unsmoothed mesh: the
+    lattice cell holding the element lies in [own_lo, own_hi)."""
+    def inside(z, y, x):
+        cz, cy, cx = math.floor(z + 1e-9), math.floor(y + 1e-9), math.floor(x + 1e-9)
+        return (own_lo[0] <= cz < own_hi[0] and own_lo[1] <= cy < own_hi[1]
+                and own_lo[2] <= cx < own_hi[2])
+
+    v_own = np.empty(g0.shape[0], np.bool_)
+    for v in range(g0.shape[0]):
+        v_own[v] = inside(g0[v, 0], g0[v, 1], g0[v, 2])
+    f_own = np.empty(faces.shape[0], np.bool_)
+    for f in range(faces.shape[0]):
+        a, b, c = faces[f, 0], faces[f, 1], faces[f, 2]
+        f_own[f] = inside((g0[a, 0] + g0[b, 0] + g0[c, 0]) / 3.0,
+                          (g0[a, 1] + g0[b, 1] + g0[c, 1]) / 3.0,
+                          (g0[a, 2] + g0[b, 2] + g0[c, 2]) / 3.0)
+    e_own = np.empty(edges.shape[0], np.bool_)
+    for e in range(edges.shape[0]):
+        a, b = edges[e, 0], edges[e, 1]
+        e_own[e] = inside(0.5 * (g0[a, 0] + g0[b, 0]), 0.5 * (g0[a, 1] + g0[b, 1]),
+                          0.5 * (g0[a, 2] + g0[b, 2]))
+    return v_own, f_own, e_own
+
+
+@njit(cache=True, nogil=True)
+def _voxel_flux_kernel(clu, cid, sd, origin, own_lo, own_hi, levels):  # pragma: no cover
+    """Per level m: Σ Δd · ramp(m − d) over the owned voxels of cluster ``cid`` (Δd by the 7-point
+    stencil, edge values continued beyond the box; oracle: :func:`_voxel_flux_reference`)."""
+    nz, ny, nx = clu.shape
+    out = np.zeros(levels.shape[0])
+    for i in range(nz):
+        gi = i + origin[0]
+        if gi < own_lo[0] or gi >= own_hi[0]:
+            continue
+        for j in range(ny):
+            gj = j + origin[1]
+            if gj < own_lo[1] or gj >= own_hi[1]:
+                continue
+            for k in range(nx):
+                gk = k + origin[2]
+                if clu[i, j, k] != cid or gk < own_lo[2] or gk >= own_hi[2]:
+                    continue
+                vd = np.float64(sd[i, j, k])
+                lap = (-6.0 * vd + sd[max(i - 1, 0), j, k] + sd[min(i + 1, nz - 1), j, k]
+                       + sd[i, max(j - 1, 0), k] + sd[i, min(j + 1, ny - 1), k]
+                       + sd[i, j, max(k - 1, 0)] + sd[i, j, min(k + 1, nx - 1)])
+                for m in range(levels.shape[0]):
+                    out[m] += lap * min(max(levels[m] - vd + 0.5, 0.0), 1.0)
+    return out
+
+
+def _voxel_flux_reference(clu, cid, sd, origin, own_lo, own_hi, levels):
+    """Plain numpy oracle of :func:`_voxel_flux_kernel`."""
+    vox = np.argwhere(clu == cid)
+    g = vox + origin
+    vox = vox[np.all((g >= own_lo) & (g < own_hi), axis=1)]
+    vd = sd[vox[:, 0], vox[:, 1], vox[:, 2]].astype(np.float64)
+    lap = -6.0 * vd
+    for ax in range(3):
+        for sgn in (-1, 1):
+            nb = vox.copy()
+            nb[:, ax] = np.clip(nb[:, ax] + sgn, 0, sd.shape[ax] - 1)
+            lap += sd[nb[:, 0], nb[:, 1], nb[:, 2]]
+    return np.array([np.sum(lap * _ramp(m - vd)) for m in levels])
+
+
 # --------------------------------------------------------------------------------------------------
 # one cluster in one box
 
 
-def _cluster_box_sums(lab, clu, cid, sd, lo, own_lo, own_hi, sigma, levels, key_dims):
+def _cluster_box_sums(lab, clu, cid, sd, lo, own_lo, own_hi, sigma, levels, key_dims,
+                      contact=None):
     """Band sums of cluster ``cid`` inside one box.
 
     ``lab``/``clu``: phase codes and cluster ids of the box (``_OUTSIDE`` beyond the array);
     ``sd``: wall distance of the box; ``lo``: global coordinate of the box origin (padded frame
     shifted so that the array starts at 0); elements whose lattice cell lies in [own_lo, own_hi)
-    are counted.
+    are counted. ``contact``, if given, is called with the smoothed mesh and its wall distances
+    (see :func:`mesh_sums`) and its result is stored under ``"contact"``.
     """
     nl = len(levels)
     res = {"A": np.zeros(nl), "K": np.zeros(nl), "Lid": np.zeros(nl), "L": np.zeros(nl),
@@ -589,14 +792,8 @@ def _cluster_box_sums(lab, clu, cid, sd, lo, own_lo, own_hi, sigma, levels, key_
 
     # ownership by lattice cell of the unsmoothed mesh (global frame)
     g0 = verts0 + lo
-
-    def owned(points):
-        c = np.floor(points + 1e-9)
-        return np.all((c >= own_lo) & (c < own_hi), axis=1)
-
-    v_own = owned(g0)
-    f_own = owned((g0[faces[:, 0]] + g0[faces[:, 1]] + g0[faces[:, 2]]) / 3.0)
-    e_own = owned(0.5 * (g0[edges[:, 0]] + g0[edges[:, 1]]))
+    v_own, f_own, e_own = _owned_kernel(g0, faces, edges, own_lo.astype(np.float64),
+                                        own_hi.astype(np.float64))
 
     # border faces: the phase across the face is outside the array or the field of view
     cen = (verts[faces[:, 0]] + verts[faces[:, 1]] + verts[faces[:, 2]]) / 3.0
@@ -611,28 +808,16 @@ def _cluster_box_sums(lab, clu, cid, sd, lo, own_lo, own_hi, sigma, levels, key_
     good_v = v_own & ~v_bad
 
     # wall distance and solid normal at the vertices
-    d = ndimage.map_coordinates(sd, verts.T, order=1, mode="nearest")
-    grad = np.empty_like(verts)
-    for ax in range(3):     # central differences of the interpolated distance, step 1 voxel
-        step = np.zeros(3)
-        step[ax] = 0.5
-        grad[:, ax] = (ndimage.map_coordinates(sd, (verts + step).T, order=1, mode="nearest")
-                       - ndimage.map_coordinates(sd, (verts - step).T, order=1, mode="nearest"))
+    # (central differences of the interpolated distance, step 1 voxel)
+    d, grad = _sample_kernel(sd, verts)
     nu = _unit(grad)
     d3 = np.sort(d[faces], axis=1)
     dface = (d3[:, 0] + d3[:, 1] + d3[:, 2]) / 3.0
     gface = _unit(grad[faces[:, 0]] + grad[faces[:, 1]] + grad[faces[:, 2]])
     flux = farea * np.einsum("ij,ij->i", gface, fnorm)
     # volume term of the footprint flux identity: Δd (7-point stencil) over the cluster's voxels
-    vox = np.argwhere(clu == cid)
-    vox = vox[owned(vox + lo.astype(np.int64))]
-    vd = sd[vox[:, 0], vox[:, 1], vox[:, 2]]
-    vlap = -6.0 * vd
-    for ax in range(3):
-        for sgn in (-1, 1):
-            nb = vox.copy()
-            nb[:, ax] = np.clip(nb[:, ax] + sgn, 0, sd.shape[ax] - 1)
-            vlap += sd[nb[:, 0], nb[:, 1], nb[:, 2]]
+    vflux = _voxel_flux_kernel(clu, cid, sd, lo.astype(np.int64), own_lo.astype(np.int64),
+                               own_hi.astype(np.int64), levels)
 
     res["A"], lid, res["K"] = _band_kernel(d3, farea, flux, good_f, deficit, d, good_v, levels)
     res["chi"] = _patch_euler_kernel(dface, border, faces, face_edges, v_own, e_own, f_own,
@@ -642,7 +827,7 @@ def _cluster_box_sums(lab, clu, cid, sd, lo, own_lo, own_hi, sigma, levels, key_
     e_sub, fe_sub = np.unique(face_edges[fsub], return_inverse=True)
     fe_sub = fe_sub.reshape(-1, 3)
     for k, m in enumerate(levels):
-        res["Lid"][k] = float(lid[k] + np.sum(vlap * _ramp(m - vd)))
+        res["Lid"][k] = float(lid[k] + vflux[k])
         seg_len, geo, nrm, pair = level_curve(verts, faces[fsub], edges[e_sub], fe_sub, d, nu,
                                               fnorm[fsub], m, e_own[e_sub], good_f[fsub])
         res["L"][k], res["G"][k], res["N"][k] = float(seg_len.sum()), geo, nrm
@@ -664,6 +849,9 @@ def _cluster_box_sums(lab, clu, cid, sd, lo, own_lo, own_hi, sigma, levels, key_
     res["cosW"] = float(np.sum(a_mix[band]))
     if good_v.any():
         res["dmax"] = float(d[good_v].max())
+    if contact is not None:
+        res["contact"] = contact(verts=verts, edges=edges, d=d, nu=nu, vnorm=vnorm, v_bad=v_bad,
+                                 lab=lab, origin=lo, own_lo=own_lo, own_hi=own_hi)
     return res
 
 
@@ -758,6 +946,29 @@ def mesh_measures(labels: np.ndarray, voxel_size: float = 1.0, *,
     Meyer, Desbrun, Schröder & Barr (2003); Taubin (1995); Lorensen & Cline (1987); see module.
     """
     h = _check_voxel_size(voxel_size)
+    acc, ncl, levels = mesh_sums(labels, clusters=clusters, connectivity=connectivity,
+                                 sigma=sigma, chunks=chunks, threads=threads)
+    if ncl == 0:
+        return pd.DataFrame({c: pd.Series(dtype=float) for c in COLUMNS})
+    return finish_mesh(acc, ncl, levels, sigma, h)
+
+
+def mesh_sums(labels: np.ndarray, *, clusters: np.ndarray | None = None, connectivity: int = 26,
+              sigma: float = 1.0, chunks: int | tuple | None = None, threads: int | None = None,
+              contact=None, reach: float = 0.0) -> tuple[dict, int, np.ndarray]:
+    """Per-cluster, per-box sums behind :func:`mesh_measures` (same parameters).
+
+    ``contact(verts, edges, d, nu, vnorm, v_bad, lab, origin, own_lo, own_hi)``, if given, is
+    called for every (cluster, box) with the Taubin-smoothed mesh (voxel coordinates of the box),
+    its unique edges, the wall distance ``d`` and solid normal ``nu`` at the vertices, the vertex
+    normals ``vnorm`` (out of n), the vertices of border faces ``v_bad``, the box's phase codes,
+    the array coordinate of the box origin and the owned core ``[own_lo, own_hi)`` (array
+    coordinates); its result is kept under ``"contact"`` in the box's sums. ``reach`` (voxels)
+    widens the halo so that the geometry up to that far beyond the core is exact.
+
+    Returns the sums of every cluster (cluster id → list of per-box dicts), the number of clusters
+    and the band levels (voxels).
+    """
     labels = np.asarray(labels)
     if labels.ndim != 3:
         raise WetpathError(f"labels must be 3-D (z, y, x), got shape {labels.shape}", step="mesh")
@@ -772,11 +983,16 @@ def mesh_measures(labels: np.ndarray, voxel_size: float = 1.0, *,
         raise WetpathError(f"clusters shape {clusters.shape} differs from labels {labels.shape}",
                            step="mesh")
     ncl = int(clusters.max()) if clusters.size else 0
-    if ncl == 0:
-        return pd.DataFrame({c: pd.Series(dtype=float) for c in COLUMNS})
-    threads = threads or os.cpu_count() or 1
-    pad, halo = _pad(sigma), _halo(sigma)
     levels = band_levels(sigma)
+    if ncl == 0:
+        return {}, 0, levels
+    threads = threads or os.cpu_count() or 1
+    pad, halo = _pad(sigma), _halo(sigma, reach)
+    if contact is not None:     # the callback works in array coordinates
+        shift = float(pad + 1)
+        contact_box = functools.partial(_shifted, contact, shift)
+    else:
+        contact_box = None
     shape = np.array(labels.shape)
     if chunks is None:
         csize = [None] * 3
@@ -804,7 +1020,8 @@ def mesh_measures(labels: np.ndarray, voxel_size: float = 1.0, *,
         blo = np.maximum(own_lo - halo, -pad)
         bhi = np.minimum(own_hi + halo, shape + pad)
         lab_c = _extract(labels, blo, bhi, _OUTSIDE)
-        sd_c = wall_distance(lab_c == SOLID, _distance_clip(sigma))
+        sd_c = wall_distance(lab_c == SOLID, _distance_clip(sigma),
+                             threads if len(boxes) == 1 else 1)
         clu_c = _extract(clusters, blo, bhi, 0)
 
         def work(cid):
@@ -814,7 +1031,8 @@ def mesh_measures(labels: np.ndarray, voxel_size: float = 1.0, *,
             sl = tuple(slice(int(a - o), int(z - o)) for a, z, o in zip(lo, hi, blo, strict=True))
             return cid, _cluster_box_sums(lab_c[sl], clu_c[sl], cid, sd_c[sl],
                                           (lo + pad + 1).astype(float), own_lo + pad + 1,
-                                          own_hi + pad + 1, sigma, levels, key_dims)
+                                          own_hi + pad + 1, sigma, levels, key_dims,
+                                          contact_box)
 
         # largest boxes first so that the threads finish together
         ids = ids[np.argsort(-np.prod(bb[ids - 1, 3:] - bb[ids - 1, :3], axis=1), kind="stable")]
@@ -836,14 +1054,20 @@ def mesh_measures(labels: np.ndarray, voxel_size: float = 1.0, *,
             else:                        # chunks: threads over chunks, ≤ ``threads`` in memory
                 for part in pool.map(lambda box: chunk(*box), boxes):
                     collect(part)
-    return _finish(acc, ncl, levels, sigma, h)
+    return acc, ncl, levels
+
+
+def _shifted(contact, shift, *, origin, own_lo, own_hi, **kwargs):
+    """``contact`` called with coordinates shifted from the padded frame to the array frame."""
+    return contact(origin=origin - shift, own_lo=own_lo - shift, own_hi=own_hi - shift, **kwargs)
 
 
 def _fit_at_zero(levels: np.ndarray, values: np.ndarray, degree: int) -> float:
     return float(np.polyval(np.polyfit(levels, values, degree), 0.0))
 
 
-def _finish(acc, ncl, levels, sigma, h) -> pd.DataFrame:
+def finish_mesh(acc: dict, ncl: int, levels: np.ndarray, sigma: float, h: float) -> pd.DataFrame:
+    """The per-cluster table of :func:`mesh_measures` from the sums of :func:`mesh_sums`."""
     rows = []
     seg_all, seg_cl = [], []
     for cid in range(1, ncl + 1):

@@ -132,9 +132,9 @@ def measure_step(store: str | os.PathLike, clusters_store: str | os.PathLike,
     ``<step>_points.csv`` (geometric contact angles at contact-line points).
     """
     from ._energy import perturb_fluid_boundary
-    from ._geometric import geometric_angles, summarise_geometric
+    from ._geometric import summarise_geometric
     from ._lattice import lattice_measures
-    from ._measure import measure_clusters, state_from_clusters
+    from ._measure import cluster_tables, state_from_clusters
     from ._store import open_step
     from ._topological import topological_from_clusters
 
@@ -147,8 +147,9 @@ def measure_step(store: str | os.PathLike, clusters_store: str | os.PathLike,
     lattice = lattice_measures(labels, h, threads=threads)
     # chunked meshing bounds memory (a percolating cluster's box is the whole volume); the sums
     # agree with whole-cluster meshing to ~1e-6 relative
-    table = measure_clusters(labels, h, clusters=clusters, sigma=sigma,
-                             connectivity=connectivity, chunks=MESH_CHUNKS, threads=threads)
+    # (the geometric angles come from the same meshes)
+    table, points = cluster_tables(labels, h, clusters, sigma=sigma, chunks=MESH_CHUNKS,
+                                   threads=threads, geometric=geometric)
     state = state_from_clusters(lattice, table)
     topo = topological_from_clusters(table)
     topo["topo_flag"] = topo.pop("flag")
@@ -158,8 +159,6 @@ def measure_step(store: str | os.PathLike, clusters_store: str | os.PathLike,
     paths = measure_paths(out_folder, step)
     per_cluster = topo["clusters"] if len(topo["clusters"]) else table
     if geometric:
-        points = geometric_angles(labels, h, clusters=clusters, sigma=sigma, chunks=MESH_CHUNKS,
-                                  threads=threads)
         geo = summarise_geometric(points)
         row.update({"theta_geom_median_deg": geo["median_deg"], "theta_geom_q25_deg":
                     geo["q25_deg"], "theta_geom_q75_deg": geo["q75_deg"],
