@@ -16,10 +16,10 @@ def test_bench_state_smoke(tmp_path):
         [str(ROOT / "src"), os.environ.get("PYTHONPATH", "")])}
     out = subprocess.run(
         [sys.executable, str(ROOT / "benchmarks" / "bench_state.py"), "--smoke", "--threads", "2",
-         "--cache", str(tmp_path), "--stages", "read", "geometric", "overlap", "measure_step"],
+         "--cache", str(tmp_path), "--stages", "read", "mesh_angles", "overlap", "measure_step"],
         capture_output=True, text=True, env=env, check=False, timeout=600)
     assert out.returncode == 0, out.stderr
-    rows = [line for line in out.stdout.splitlines() if line.startswith("| 40³ |")]
-    assert [r.split("|")[2].strip() for r in rows] == ["read", "geometric", "overlap",
+    rows = [line for line in out.stdout.splitlines() if line.startswith("| 40³ pores20 |")]
+    assert [r.split("|")[2].strip() for r in rows] == ["read", "mesh_angles", "overlap",
                                                        "measure_step"]
     assert "versions: python" in out.stdout
