@@ -189,3 +189,18 @@ def test_mesh_glue_kernels_equal_numpy(medium):
             levels)
     np.testing.assert_allclose(m._voxel_flux_kernel(*args), m._voxel_flux_reference(*args),
                                rtol=1e-9, atol=1e-9)
+
+
+@pytest.mark.parametrize("threads", [1, 2])
+def test_squared_distance_equals_scipy(medium, threads):
+    # exact Euclidean distance transform (oracle: scipy.ndimage.distance_transform_edt), capped
+    from wetpath._mesh import squared_distance
+
+    lab, _ = medium
+    for feature in (lab == 1, lab[:9, :30, 5:7] == 1, np.zeros((5, 6, 7), bool)):
+        ref = ndimage.distance_transform_edt(~feature) ** 2 if feature.any() else \
+            np.full(feature.shape, np.inf)
+        for cap in (3.0, 100.0):
+            big = cap**2 + 1.0
+            np.testing.assert_array_equal(squared_distance(feature, cap, threads),
+                                          np.minimum(ref, big).astype(np.float32))

@@ -23,7 +23,7 @@ intersected:
    quadric's normal and the plane's normal. Points whose fitted patch is too thin to extrapolate
    (an interface that barely rises above the rounded crease) get NaN and ``flag_unresolved``.
 
-The fits run in a compiled kernel, one 6×6 normal-equation system per point, in parallel; the
+The fits run in a compiled kernel, one 6×6 normal-equation system per point; the
 batched numpy version is kept as the test oracle. Chunks (or clusters) run on ``threads`` worker
 threads.
 
@@ -46,7 +46,7 @@ import warnings
 
 import numpy as np
 import pandas as pd
-from numba import njit, prange
+from numba import njit
 from scipy import ndimage
 from scipy.spatial import cKDTree
 
@@ -143,7 +143,7 @@ def _fit_quadrics_reference(points, band_verts, band_normals, band_dist, fit_rad
     return beta, (e1, e2, e3), w.sum(axis=1).astype(int), span
 
 
-@njit(cache=True, nogil=True, parallel=True, error_model="numpy")
+@njit(cache=True, nogil=True, error_model="numpy")
 def _fit_kernel(points, idx, valid, verts, normals, dist, slope_scale):  # pragma: no cover
     """Compiled :func:`_fit_quadrics_reference` after the neighbour query: per point, the frame,
     the 6×6 normal equations accumulated vertex by vertex (no (P, 3K, 6) design arrays), their
@@ -157,7 +157,7 @@ def _fit_kernel(points, idx, valid, verts, normals, dist, slope_scale):  # pragm
     lo_out = np.full(p_n, np.inf)
     hi_out = np.full(p_n, -np.inf)
     s2 = slope_scale * slope_scale
-    for p in prange(p_n):
+    for p in range(p_n):
         a = np.zeros(3)
         for k in range(k_n):
             if valid[p, k]:

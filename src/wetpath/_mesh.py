@@ -62,8 +62,8 @@ import functools
 import math
 import os
 from concurrent.futures import ThreadPoolExecutor
+from typing import NamedTuple
 
-import numba
 import numpy as np
 import pandas as pd
 from numba import njit
@@ -73,6 +73,7 @@ from skimage.measure import marching_cubes
 
 from ._codes import EXCLUDED, NONWETTING, SOLID
 from ._errors import WetpathError
+from ._parallel import map_forked
 
 TAUBIN_LAMBDA, TAUBIN_MU, TAUBIN_ITERATIONS = 0.5, -0.53, 10
 BAND_START = 3.0          # in σ: the band starts this far from the solid
@@ -83,6 +84,10 @@ RESOLVE_MARGIN = 1.0      # voxels above the top band level the interface must r
 RESOLVE_FRACTION = 0.5   # share of the n–w area that must lie beyond the first band level
 HALO_EXTRA = 8           # voxels beyond the blur radius: smoothing rings and wall distances
 _OUTSIDE = 255            # label of the virtual padding outside the array
+PROCESS_MIN_VOXELS = 160**3
+"""Volumes at least this large are meshed chunk by chunk in worker processes (threads share one
+GIL, so they use little more than one core); smaller ones, where starting the processes would
+cost more than it saves, on threads."""
 
 COLUMNS = ["cluster", "area_nw_mesh", "area_ns_mesh", "curvature_nw", "curvature_nw_std",
            "curv_area_nw", "curv_weight_nw", "curv2_area_nw", "gauss_nw", "contact_loops",
@@ -185,20 +190,47 @@ def _edt_axis(d, axis, lo, hi):  # pragma: no cover
                         d[q, o, k0 + b] = buf[q, b]
 
 
+@njit(cache=True, nogil=True)
+def _edt_rows_binary(feature, d, big, lo, hi):  # pragma: no cover
+    """First pass (along x) for a binary feature: squared distance to the nearest ``True`` voxel
+    of the row, by a forward and a backward sweep, capped at ``big``; rows of planes ``lo:hi``."""
+    n0, n1, n = feature.shape
+    far = 1 << 30
+    for i in range(lo, hi):
+        for j in range(n1):
+            last = -far
+            for q in range(n):
+                if feature[i, j, q]:
+                    last = q
+                g = q - last
+                d[i, j, q] = min(float(g) * g, big)
+            last = far
+            for q in range(n - 1, -1, -1):
+                if feature[i, j, q]:
+                    last = q
+                g = last - q
+                d[i, j, q] = min(d[i, j, q], min(float(g) * g, big))
+
+
+def _split(n: int, threads: int) -> list[tuple[int, int]]:
+    cuts = np.linspace(0, n, max(1, min(threads, n)) + 1).astype(int)
+    return list(zip(cuts[:-1].tolist(), cuts[1:].tolist(), strict=True))
+
+
 def _sq_edt(feature: np.ndarray, big: float, threads: int = 1) -> np.ndarray:
     """Squared Euclidean distance (voxels², float32) of every voxel to the nearest ``True`` voxel
     of ``feature``, capped at ``big``: three separable passes (x, y, z), each split over
-    ``threads`` threads (the kernel releases the GIL)."""
-    d = np.where(feature, np.float32(0.0), np.float32(big))
-    for axis in (2, 1, 0):
-        outer = d.shape[1] if axis == 0 else d.shape[0]
-        cuts = np.linspace(0, outer, max(1, min(threads, outer)) + 1).astype(int)
-        parts = list(zip(cuts[:-1], cuts[1:], strict=True))
+    ``threads`` threads (the kernels release the GIL)."""
+    d = np.empty(feature.shape, np.float32)
+    passes = [lambda lo, hi: _edt_rows_binary(feature, d, np.float32(big), lo, hi)]
+    passes += [lambda lo, hi, ax=ax: _edt_axis(d, ax, lo, hi) for ax in (1, 0)]
+    for k, run in enumerate(passes):
+        parts = _split(d.shape[1] if k == 2 else d.shape[0], threads)
         if len(parts) == 1:
-            _edt_axis(d, axis, 0, outer)
+            run(*parts[0])
         else:
             with ThreadPoolExecutor(len(parts)) as pool:
-                list(pool.map(lambda p, ax=axis: _edt_axis(d, ax, p[0], p[1]), parts))
+                list(pool.map(lambda p, run=run: run(*p), parts))
     return np.minimum(d, np.float32(big), out=d)
 
 
@@ -1006,38 +1038,8 @@ def mesh_sums(labels: np.ndarray, *, clusters: np.ndarray | None = None, connect
     boxes = [(np.array([rz[0], ry[0], rx[0]]), np.array([rz[1], ry[1], rx[1]]))
              for rz in ranges[0] for ry in ranges[1] for rx in ranges[2]]
 
-    # compiled parallel kernels use the threads only when no pool runs chunks concurrently
-    numba_threads = max(1, min(threads if len(boxes) == 1 else 1,
-                               numba.config.NUMBA_NUM_THREADS))
-
-    def chunk(own_lo, own_hi, pool=None):
-        numba.set_num_threads(numba_threads)      # thread-local in numba: set in each worker
-        # clusters whose mesh cells [bbox_lo − 1, bbox_hi) meet the owned range
-        hit = np.all((bb[:, :3] - 1 < own_hi) & (bb[:, 3:] > own_lo), axis=1)
-        ids = np.flatnonzero(hit) + 1
-        if ids.size == 0:
-            return []
-        blo = np.maximum(own_lo - halo, -pad)
-        bhi = np.minimum(own_hi + halo, shape + pad)
-        lab_c = _extract(labels, blo, bhi, _OUTSIDE)
-        sd_c = wall_distance(lab_c == SOLID, _distance_clip(sigma),
-                             threads if len(boxes) == 1 else 1)
-        clu_c = _extract(clusters, blo, bhi, 0)
-
-        def work(cid):
-            b = bb[cid - 1]
-            lo = np.maximum(np.maximum(own_lo, b[:3] - 1) - halo, blo)
-            hi = np.minimum(np.minimum(own_hi, b[3:]) + halo, bhi)
-            sl = tuple(slice(int(a - o), int(z - o)) for a, z, o in zip(lo, hi, blo, strict=True))
-            return cid, _cluster_box_sums(lab_c[sl], clu_c[sl], cid, sd_c[sl],
-                                          (lo + pad + 1).astype(float), own_lo + pad + 1,
-                                          own_hi + pad + 1, sigma, levels, key_dims,
-                                          contact_box)
-
-        # largest boxes first so that the threads finish together
-        ids = ids[np.argsort(-np.prod(bb[ids - 1, 3:] - bb[ids - 1, :3], axis=1), kind="stable")]
-        return list(pool.map(work, ids)) if pool is not None else [work(c) for c in ids]
-
+    ctx = _ChunkContext(bb, sigma, pad, halo, levels, key_dims, contact_box,
+                        threads if len(boxes) == 1 else 1)
     acc: dict[int, list] = {}
 
     def collect(part):
@@ -1046,20 +1048,68 @@ def mesh_sums(labels: np.ndarray, *, clusters: np.ndarray | None = None, connect
 
     if threads == 1:
         for box in boxes:
-            collect(chunk(*box))
-    else:
+            collect(_chunk_sums(labels, clusters, *box, ctx))
+    elif len(boxes) == 1:                  # whole clusters: threads over clusters
         with ThreadPoolExecutor(threads) as pool:
-            if len(boxes) == 1:          # whole clusters: threads over clusters
-                collect(chunk(*boxes[0], pool=pool))
-            else:                        # chunks: threads over chunks, ≤ ``threads`` in memory
-                for part in pool.map(lambda box: chunk(*box), boxes):
-                    collect(part)
+            collect(_chunk_sums(labels, clusters, *boxes[0], ctx, pool))
+    elif labels.size >= PROCESS_MIN_VOXELS:  # chunks in worker processes (no shared GIL)
+        for part in map_forked(_chunk_sums, [labels, clusters],
+                               [(*box, ctx) for box in boxes], threads):
+            collect(part)
+    else:                                  # chunks on threads, ≤ ``threads`` in memory
+        with ThreadPoolExecutor(threads) as pool:
+            for part in pool.map(lambda box: _chunk_sums(labels, clusters, *box, ctx), boxes):
+                collect(part)
     return acc, ncl, levels
 
 
 def _shifted(contact, shift, *, origin, own_lo, own_hi, **kwargs):
     """``contact`` called with coordinates shifted from the padded frame to the array frame."""
     return contact(origin=origin - shift, own_lo=own_lo - shift, own_hi=own_hi - shift, **kwargs)
+
+
+class _ChunkContext(NamedTuple):
+    """What every chunk of :func:`mesh_sums` needs besides the arrays and its own range."""
+
+    bb: np.ndarray            # (clusters, 6) bounding boxes: lo (z, y, x), hi (z, y, x)
+    sigma: float
+    pad: int
+    halo: int
+    levels: np.ndarray
+    key_dims: np.ndarray
+    contact: object           # callback or None
+    threads: int              # threads of the distance transform
+
+
+def _chunk_sums(labels, clusters, own_lo, own_hi, ctx: _ChunkContext, pool=None) -> list:
+    """Sums of every cluster meeting the core ``[own_lo, own_hi)`` (padded-array coordinates):
+    ``[(cluster id, sums), ...]``; clusters run on ``pool`` if given."""
+    bb, halo, pad = ctx.bb, ctx.halo, ctx.pad
+    # clusters whose mesh cells [bbox_lo − 1, bbox_hi) meet the owned range
+    hit = np.all((bb[:, :3] - 1 < own_hi) & (bb[:, 3:] > own_lo), axis=1)
+    ids = np.flatnonzero(hit) + 1
+    if ids.size == 0:
+        return []
+    shape = np.array(labels.shape)
+    blo = np.maximum(own_lo - halo, -pad)
+    bhi = np.minimum(own_hi + halo, shape + pad)
+    lab_c = _extract(labels, blo, bhi, _OUTSIDE)
+    sd_c = wall_distance(lab_c == SOLID, _distance_clip(ctx.sigma), ctx.threads)
+    clu_c = _extract(clusters, blo, bhi, 0)
+
+    def work(cid):
+        b = bb[cid - 1]
+        lo = np.maximum(np.maximum(own_lo, b[:3] - 1) - halo, blo)
+        hi = np.minimum(np.minimum(own_hi, b[3:]) + halo, bhi)
+        sl = tuple(slice(int(a - o), int(z - o)) for a, z, o in zip(lo, hi, blo, strict=True))
+        return cid, _cluster_box_sums(lab_c[sl], clu_c[sl], cid, sd_c[sl],
+                                      (lo + pad + 1).astype(float), own_lo + pad + 1,
+                                      own_hi + pad + 1, ctx.sigma, ctx.levels, ctx.key_dims,
+                                      ctx.contact)
+
+    # largest boxes first so that the threads finish together
+    ids = ids[np.argsort(-np.prod(bb[ids - 1, 3:] - bb[ids - 1, :3], axis=1), kind="stable")]
+    return list(pool.map(work, ids)) if pool is not None else [work(c) for c in ids]
 
 
 def _fit_at_zero(levels: np.ndarray, values: np.ndarray, degree: int) -> float:
