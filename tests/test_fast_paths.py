@@ -204,3 +204,30 @@ def test_squared_distance_equals_scipy(medium, threads):
             big = cap**2 + 1.0
             np.testing.assert_array_equal(squared_distance(feature, cap, threads),
                                           np.minimum(ref, big).astype(np.float32))
+
+
+def test_chunks_in_worker_processes_equal_serial(medium, monkeypatch):
+    # the forked-process path (used from 160³ up) gives the same tables as one thread
+    from wetpath import _mesh
+
+    lab, clusters = medium
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        serial = geo.mesh_and_angles(lab, clusters=clusters, chunks=24, threads=1)
+        monkeypatch.setattr(_mesh, "PROCESS_MIN_VOXELS", 0)
+        forked = geo.mesh_and_angles(lab, clusters=clusters, chunks=24, threads=2)
+    for a, b in zip(serial, forked, strict=True):
+        pd.testing.assert_frame_equal(a, b, check_exact=True)
+
+
+def test_perturbation_equals_scipy_dilation(medium):
+    # compiled one-voxel boundary move against scipy.ndimage.binary_dilation (the oracle)
+    from wetpath._energy import _perturb_reference, perturb_fluid_boundary
+
+    lab, _ = medium
+    rng = np.random.default_rng(5)
+    noisy = rng.integers(0, 4, (9, 8, 7)).astype(np.uint8)     # every code, incl. excluded
+    for labels in (lab, noisy):
+        for got, ref in zip(perturb_fluid_boundary(labels), _perturb_reference(labels, 1),
+                            strict=True):
+            np.testing.assert_array_equal(got, ref)

@@ -268,10 +268,17 @@ def _face_sums(points, lab, radius):  # pragma: no cover
         z0, z1 = max(int(math.floor(pz - radius)) - 1, 0), min(int(math.ceil(pz + radius)) + 2, nz)
         y0, y1 = max(int(math.floor(py - radius)) - 1, 0), min(int(math.ceil(py + radius)) + 2, ny)
         x0, x1 = max(int(math.floor(px - radius)) - 1, 0), min(int(math.ceil(px + radius)) + 2, nx)
+        reach2 = (radius + 1.0) * (radius + 1.0)   # voxels whose faces can be within radius
         for i in range(z0, z1):
+            rz = (i - pz) * (i - pz)
+            if rz > reach2:
+                continue
             for j in range(y0, y1):
+                ry = rz + (j - py) * (j - py)
+                if ry > reach2:
+                    continue
                 for k in range(x0, x1):
-                    if lab[i, j, k] != SOLID:
+                    if ry + (k - px) * (k - px) > reach2 or lab[i, j, k] != SOLID:
                         continue
                     for ax in range(3):
                         for sgn in (-1, 1):

@@ -858,14 +858,18 @@ def _cluster_box_sums(lab, clu, cid, sd, lo, own_lo, own_hi, sigma, levels, key_
     fsub = np.flatnonzero((d3[:, 2] > levels[0]) & (d3[:, 0] <= levels[-1]))
     e_sub, fe_sub = np.unique(face_edges[fsub], return_inverse=True)
     fe_sub = fe_sub.reshape(-1, 3)
+    edges_sub, e_own_sub, d3_sub = edges[e_sub], e_own[e_sub], d3[fsub]
     for k, m in enumerate(levels):
         res["Lid"][k] = float(lid[k] + vflux[k])
-        seg_len, geo, nrm, pair = level_curve(verts, faces[fsub], edges[e_sub], fe_sub, d, nu,
-                                              fnorm[fsub], m, e_own[e_sub], good_f[fsub])
+        # only faces with corners on both sides of m can hold a piece of the curve
+        at = np.flatnonzero((d3_sub[:, 0] <= m) & (d3_sub[:, 2] > m))
+        fl = fsub[at]
+        seg_len, geo, nrm, pair = level_curve(verts, faces[fl], edges_sub, fe_sub[at], d, nu,
+                                              fnorm[fl], m, e_own_sub, good_f[fl])
         res["L"][k], res["G"][k], res["N"][k] = float(seg_len.sum()), geo, nrm
         if k == 0 and len(pair):
             vkey = _vertex_keys(g0, key_dims)
-            es = edges[e_sub]
+            es = edges_sub
             ek = np.sort(np.stack([vkey[es[:, 0]], vkey[es[:, 1]]], axis=1), axis=1)
             res["segs"] = np.concatenate([ek[pair[:, 0]], ek[pair[:, 1]]], axis=1)
     res["V"], res["E"], res["F"] = float(v_own.sum()), float(e_own.sum()), float(f_own.sum())
