@@ -231,3 +231,23 @@ def test_perturbation_equals_scipy_dilation(medium):
         for got, ref in zip(perturb_fluid_boundary(labels), _perturb_reference(labels, 1),
                             strict=True):
             np.testing.assert_array_equal(got, ref)
+
+
+def test_face_kernel_equals_numpy(medium):
+    # per-face glue of the mesh measures against its numpy oracle (sums to 1e-12 relative: only
+    # the order of the additions differs)
+    from wetpath import _mesh as m
+
+    lab, clusters = medium
+    k = int(np.bincount(clusters.ravel())[1:].argmax()) + 1
+    _, verts, faces = smoothed_mesh(clusters == k, 1.0)
+    _, _, _, _, farea, fnorm = m._vertex_kernel(verts, faces)
+    box = np.pad(lab, 2, constant_values=m._OUTSIDE)            # border faces too
+    verts = verts + 2
+    sd = wall_distance(box == 1, 14.0)
+    d, grad = m._sample_kernel(sd, verts)
+    f_own = np.random.default_rng(3).random(len(faces)) < 0.7
+    got = m._face_kernel(verts, faces, fnorm, farea, box, f_own, d, grad)
+    ref = m._face_reference(verts, faces, fnorm, farea, box, f_own, d, grad)
+    for g, r in zip(got, ref, strict=True):
+        np.testing.assert_allclose(g, r, rtol=1e-12, atol=1e-12)

@@ -795,6 +795,71 @@ def _voxel_flux_reference(clu, cid, sd, origin, own_lo, own_hi, levels):
     return np.array([np.sum(lap * _ramp(m - vd)) for m in levels])
 
 
+@njit(cache=True, nogil=True)
+def _face_kernel(verts, faces, fnorm, farea, lab, f_own, d, grad):  # pragma: no cover
+    """Compiled :func:`_face_reference`: per face the phase across it (probe 0.8 voxel out along
+    the normal from the centroid), border flags, owned n–s and n–w raw areas, border vertices,
+    sorted corner distances, their mean and the flux of the unit mean ∇d of the corners."""
+    nf, nv = faces.shape[0], verts.shape[0]
+    nz, ny, nx = lab.shape
+    across = np.empty(nf, np.uint8)
+    border = np.zeros(nf, np.bool_)
+    v_bad = np.zeros(nv, np.bool_)
+    d3 = np.empty((nf, 3))
+    dface = np.empty(nf)
+    flux = np.empty(nf)
+    ans = anw = 0.0
+    for f in range(nf):
+        a, b, c = faces[f, 0], faces[f, 1], faces[f, 2]
+        p = np.empty(3, np.int64)
+        for ax in range(3):
+            cen = (verts[a, ax] + verts[b, ax] + verts[c, ax]) / 3.0
+            p[ax] = int(np.rint(cen + 0.8 * fnorm[f, ax]))
+        p0, p1, p2 = min(max(p[0], 0), nz - 1), min(max(p[1], 0), ny - 1), min(max(p[2], 0), nx - 1)
+        code = lab[p0, p1, p2]
+        across[f] = code
+        if code == _OUTSIDE or code == EXCLUDED:
+            border[f] = True
+            v_bad[a] = v_bad[b] = v_bad[c] = True
+        elif f_own[f]:
+            if code == SOLID:
+                ans += farea[f]
+            else:
+                anw += farea[f]
+        x, y, z = d[a], d[b], d[c]
+        if x > y:
+            x, y = y, x
+        if y > z:
+            y, z = z, y
+        if x > y:
+            x, y = y, x
+        d3[f, 0], d3[f, 1], d3[f, 2] = x, y, z
+        dface[f] = (x + y + z) / 3.0
+        g0 = grad[a, 0] + grad[b, 0] + grad[c, 0]
+        g1 = grad[a, 1] + grad[b, 1] + grad[c, 1]
+        g2 = grad[a, 2] + grad[b, 2] + grad[c, 2]
+        gn = max(math.sqrt(g0 * g0 + g1 * g1 + g2 * g2), 1e-30)
+        flux[f] = farea[f] * (g0 * fnorm[f, 0] + g1 * fnorm[f, 1] + g2 * fnorm[f, 2]) / gn
+    return across, border, ans, anw, v_bad, d3, dface, flux
+
+
+def _face_reference(verts, faces, fnorm, farea, lab, f_own, d, grad):
+    """Plain numpy oracle of :func:`_face_kernel`."""
+    cen = (verts[faces[:, 0]] + verts[faces[:, 1]] + verts[faces[:, 2]]) / 3.0
+    probe = np.rint(cen + 0.8 * fnorm).astype(np.int64)
+    probe = np.clip(probe, 0, np.array(lab.shape) - 1)
+    across = lab[probe[:, 0], probe[:, 1], probe[:, 2]]
+    border = (across == _OUTSIDE) | (across == EXCLUDED)
+    ans = float(farea[f_own & (across == SOLID)].sum())
+    anw = float(farea[f_own & ~border & (across != SOLID)].sum())
+    v_bad = np.bincount(faces[border].ravel(), minlength=len(verts)) > 0
+    d3 = np.sort(d[faces], axis=1)
+    dface = (d3[:, 0] + d3[:, 1] + d3[:, 2]) / 3.0
+    gface = _unit(grad[faces[:, 0]] + grad[faces[:, 1]] + grad[faces[:, 2]])
+    flux = farea * np.einsum("ij,ij->i", gface, fnorm)
+    return across, border, ans, anw, v_bad, d3, dface, flux
+
+
 # --------------------------------------------------------------------------------------------------
 # one cluster in one box
 
@@ -818,7 +883,6 @@ def _cluster_box_sums(lab, clu, cid, sd, lo, own_lo, own_hi, sigma, levels, key_
     verts0, faces, edges, face_edges = _raw_mesh(clu == cid, sigma)
     if len(faces) == 0:
         return res
-    nv = len(verts0)
     verts = _taubin_kernel(verts0.copy(), edges, TAUBIN_ITERATIONS, TAUBIN_LAMBDA, TAUBIN_MU)
     a_mix, kappa, deficit, vnorm, farea, fnorm = _vertex_kernel(verts, faces)
 
@@ -827,26 +891,17 @@ def _cluster_box_sums(lab, clu, cid, sd, lo, own_lo, own_hi, sigma, levels, key_
     v_own, f_own, e_own = _owned_kernel(g0, faces, edges, own_lo.astype(np.float64),
                                         own_hi.astype(np.float64))
 
-    # border faces: the phase across the face is outside the array or the field of view
-    cen = (verts[faces[:, 0]] + verts[faces[:, 1]] + verts[faces[:, 2]]) / 3.0
-    probe = np.rint(cen + 0.8 * fnorm).astype(np.int64)
-    probe = np.clip(probe, 0, np.array(lab.shape) - 1)
-    across = lab[probe[:, 0], probe[:, 1], probe[:, 2]]
-    border = (across == _OUTSIDE) | (across == EXCLUDED)
-    res["Ans_raw"] = float(farea[f_own & (across == SOLID)].sum())
-    res["Anw_raw"] = float(farea[f_own & ~border & (across != SOLID)].sum())
-    v_bad = np.bincount(faces[border].ravel(), minlength=nv) > 0
-    good_f = f_own & ~border
-    good_v = v_own & ~v_bad
-
     # wall distance and solid normal at the vertices
     # (central differences of the interpolated distance, step 1 voxel)
     d, grad = _sample_kernel(sd, verts)
     nu = _unit(grad)
-    d3 = np.sort(d[faces], axis=1)
-    dface = (d3[:, 0] + d3[:, 1] + d3[:, 2]) / 3.0
-    gface = _unit(grad[faces[:, 0]] + grad[faces[:, 1]] + grad[faces[:, 2]])
-    flux = farea * np.einsum("ij,ij->i", gface, fnorm)
+    # per face: the phase across it (border faces: outside the array or the field of view), the
+    # sorted corner distances, the flux of ∇d through it
+    _, border, ans, anw, v_bad, d3, dface, flux = _face_kernel(
+        verts, faces, fnorm, farea, lab, f_own, d, grad)
+    res["Ans_raw"], res["Anw_raw"] = ans, anw
+    good_f = f_own & ~border
+    good_v = v_own & ~v_bad
     # volume term of the footprint flux identity: Δd (7-point stencil) over the cluster's voxels
     vflux = _voxel_flux_kernel(clu, cid, sd, lo.astype(np.int64), own_lo.astype(np.int64),
                                own_hi.astype(np.int64), levels)
