@@ -567,14 +567,21 @@ def level_curve(verts, faces, edges, face_edges, d, nu, normal, m, edge_own, fac
     """Oriented level curve d = m on the mesh.
 
     Returns the owned segment lengths, ∫ k_g^s ds and ∫ k_n^s ds summed over owned crossing points,
-    and the segments as (edge index, edge index) pairs of owned faces. Orientation: ν_s × t points
+    and the segments as (edge index, edge index) pairs of owned faces. Faces that do not straddle
+    m may be left out (they hold no piece of the curve). Orientation: ν_s × t points
     into the n phase (away from the face normal), so ∫ k_g^s ds = +2π for a cap on a plate.
     """
+    empty = np.zeros(0)
+    if len(faces) == 0:
+        return empty, 0.0, 0.0, np.zeros((0, 2), np.int64)
+    # work on the edges of the given faces only (callers pass the faces that straddle m)
+    loc, face_edges = np.unique(face_edges, return_inverse=True)
+    face_edges = face_edges.reshape(-1, 3)
+    edges, edge_own = edges[loc], edge_own[loc]
     above = d > m
     cross_e = above[edges[:, 0]] != above[edges[:, 1]]
     sel = cross_e[face_edges]
     fs = np.flatnonzero(sel.sum(axis=1) == 2)
-    empty = np.zeros(0)
     if fs.size == 0:
         return empty, 0.0, 0.0, np.zeros((0, 2), np.int64)
     ce = np.flatnonzero(cross_e)
@@ -605,7 +612,7 @@ def level_curve(verts, faces, edges, face_edges, d, nu, normal, m, edge_own, fac
     geo = float(np.einsum("ij,ij->", dt, cs))
     nrm = float(np.einsum("ij,ij->", dt, nv_))
     own = face_own[fs]
-    return length[own], geo, nrm, pair[own]
+    return length[own], geo, nrm, loc[pair[own]]
 
 
 def _raw_mesh(indicator: np.ndarray, sigma: float):
