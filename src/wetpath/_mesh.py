@@ -102,9 +102,11 @@ def band_levels(sigma: float) -> np.ndarray:
 
 
 def _halo(sigma: float, reach: float = 0.0) -> int:
-    """Voxels of context that keep owned elements identical: blur, 20 smoothing rings, distances;
-    plus ``reach`` for elements that look further (the geometric angles' fits)."""
-    return int(math.ceil(4 * sigma)) + HALO_EXTRA + int(math.ceil(reach))
+    """Voxels of context that keep owned elements identical: blur, 20 smoothing rings, distances
+    (a wall distance up to the clip, smoothed over 4 voxels, needs the solid that far); plus
+    ``reach`` for elements that look further (the geometric angles' fits)."""
+    return max(int(math.ceil(4 * sigma)) + HALO_EXTRA + int(math.ceil(reach)),
+               int(math.ceil(_distance_clip(sigma))) + 5)
 
 
 def _pad(sigma: float) -> int:
@@ -1018,8 +1020,9 @@ def mesh_measures(labels: np.ndarray, voxel_size: float = 1.0, *,
     sigma : float
         Gaussian blur of the cluster indicator before marching cubes, voxels (1–1.5).
     chunks : int or tuple of int, optional
-        Core chunk size (voxels per axis) for bounded memory; None meshes whole clusters. Results
-        agree to ~1e-6 relative whatever the chunking.
+        Largest core chunk edge (voxels per axis) for bounded memory; each axis is split into equal
+        parts no longer than that. None meshes whole clusters. Results agree to ~1e-6 relative
+        whatever the chunking.
     threads : int, optional
         Worker threads over chunks (or over clusters when ``chunks`` is None) and threads of the
         compiled distance transform (None: all cores).
@@ -1095,7 +1098,11 @@ def mesh_sums(labels: np.ndarray, *, clusters: np.ndarray | None = None, connect
     if chunks is None:
         csize = [None] * 3
     else:
-        csize = list(np.broadcast_to(np.atleast_1d(chunks), (3,)).astype(int))
+        # equal parts no longer than the requested edge: 512 → 2 × 256 rather than 256 + 256,
+        # 384 → 2 × 192 rather than 256 + 128 (less halo per voxel)
+        req = np.broadcast_to(np.atleast_1d(chunks), (3,)).astype(int)
+        csize = [int(math.ceil(n / math.ceil(n / max(int(c), 1)))) for n, c in zip(shape, req,
+                                                                                  strict=True)]
     ranges = [_chunk_ranges(int(n), s, pad) for n, s in zip(shape, csize, strict=True)]
     objs = ndimage.find_objects(clusters)
     bb = np.array([[s.start for s in o] + [s.stop for s in o] if o is not None
@@ -1105,7 +1112,7 @@ def mesh_sums(labels: np.ndarray, *, clusters: np.ndarray | None = None, connect
              for rz in ranges[0] for ry in ranges[1] for rx in ranges[2]]
 
     ctx = _ChunkContext(bb, sigma, pad, halo, levels, key_dims, contact_box,
-                        threads if len(boxes) == 1 else 1)
+                        threads if len(boxes) == 1 else 1, int(math.ceil(reach)))
     acc: dict[int, list] = {}
 
     def collect(part):
@@ -1145,14 +1152,17 @@ class _ChunkContext(NamedTuple):
     key_dims: np.ndarray
     contact: object           # callback or None
     threads: int              # threads of the distance transform
+    reach: int                # voxels beyond the core that the callback's elements may lie
 
 
 def _chunk_sums(labels, clusters, own_lo, own_hi, ctx: _ChunkContext, pool=None) -> list:
     """Sums of every cluster meeting the core ``[own_lo, own_hi)`` (padded-array coordinates):
     ``[(cluster id, sums), ...]``; clusters run on ``pool`` if given."""
     bb, halo, pad = ctx.bb, ctx.halo, ctx.pad
-    # clusters whose mesh cells [bbox_lo − 1, bbox_hi) meet the owned range
-    hit = np.all((bb[:, :3] - 1 < own_hi) & (bb[:, 3:] > own_lo), axis=1)
+    # clusters whose mesh cells [bbox_lo − 1, bbox_hi) come within ``reach`` of the owned range
+    # (a contact point lies on the solid, up to a few voxels beyond its cluster's voxels)
+    r = ctx.reach
+    hit = np.all((bb[:, :3] - 1 - r < own_hi) & (bb[:, 3:] + r > own_lo), axis=1)
     ids = np.flatnonzero(hit) + 1
     if ids.size == 0:
         return []

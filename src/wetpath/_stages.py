@@ -22,12 +22,13 @@ from ._errors import WetpathError
 __all__ = ["label_step", "measure_step", "track_step", "increment_step", "collect_angles",
            "history_series", "measure_paths"]
 
-# chunk edge (voxels) of the mesh measures and geometric angles in the measure stage: each chunk
-# is meshed with a halo of 26 voxels (blur, smoothing rings, the fits' reach), so larger chunks
-# waste less (volume meshed per voxel: 2.8 at 128, 2.0 at 192) but hold more memory (~30 bytes
-# per voxel of chunk and halo, ~0.45 GB at 192, per worker); volumes up to 192 voxels per edge are
+# largest chunk edge (voxels) of the mesh measures and geometric angles in the measure stage (each
+# axis is split into equal parts no longer than this): each chunk is meshed with a halo of 26
+# voxels (blur, smoothing rings, the fits' reach), so larger chunks waste less (volume meshed per
+# voxel at 512³: 2.2 with 192-voxel chunks, 1.45 with 256) but hold more memory (~25 bytes per
+# voxel of chunk and halo, ~0.75 GB at 256, per worker); volumes up to 256 voxels per edge are
 # meshed whole
-MESH_CHUNKS = 192
+MESH_CHUNKS = 256
 # state keys that are tables, not numbers
 _TABLE_KEYS = ("blocks", "clusters")
 
