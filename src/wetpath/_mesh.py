@@ -80,6 +80,7 @@ BAND_WIDTH = 4.0          # voxels: band levels m = 2.5σ ... 2.5σ + BAND_WIDTH
 BAND_LEVELS = 9
 CURVATURE_DISTANCE = 4.0  # in σ: vertices used for κ are at least this far from the solid
 RESOLVE_MARGIN = 0.5      # voxels above the top band level the interface must reach
+DMAX_REPORTED = 3.0       # voxels above the top band level: cap of max_wall_distance
 RESOLVE_FRACTION = 0.5   # share of the n–w area that must lie beyond the first band level
 HALO_EXTRA = 8           # voxels beyond the blur radius: smoothing rings and wall distances
 SOLID_BLUR = 1.0          # voxels: blur of the solid indicator that locates its surface
@@ -108,7 +109,7 @@ def _pad(sigma: float) -> int:
 
 
 def _distance_clip(sigma: float) -> float:
-    return BAND_START * sigma + BAND_WIDTH + 3.0
+    return BAND_START * sigma + BAND_WIDTH + 8.0
 
 
 # --------------------------------------------------------------------------------------------------
@@ -920,7 +921,8 @@ def _finish(acc, ncl, levels, sigma, h) -> pd.DataFrame:
         tot = {k: sum(p[k] for p in parts) if parts else 0.0
                for k in ("A", "K", "Lid", "L", "G", "N", "chi", "V", "E", "F", "kA", "k2A", "wA",
                          "cosA", "cosW", "Anw_raw", "Ans_raw")}
-        dmax = max((p["dmax"] for p in parts), default=-np.inf)
+        # capped: farther distances depend on solid beyond the chunk halo
+        dmax = min(max((p["dmax"] for p in parts), default=-np.inf), levels[-1] + DMAX_REPORTED)
         for p in parts:
             if len(p["segs"]):
                 seg_all.append(p["segs"])
