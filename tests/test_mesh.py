@@ -90,7 +90,10 @@ def test_cap_on_plate(theta, normal):
     assert row.resolved
     assert row.contact_loops == 1
     assert row.area_nw_mesh == pytest.approx(exact["area_nw"], rel=0.03)
-    assert row.contact_length == pytest.approx(exact["contact_length"], rel=0.03)
+    # contact length 2πr within 3 % (issue 3); measured here +0.5 %, −0.5 %, −0.1 %; over 48 caps
+    # per radius (θ_w 30°–135°, three plate normals) rms 0.4 % (R = 20) and 0.5 % (R = 30), worst
+    # 2.4 % (fitting L itself rather than L² read 30° caps 3–4 % long, 135° caps up to 4.8 % short)
+    assert row.contact_length == pytest.approx(exact["contact_length"], rel=0.015)
     # footprint area A_ns = π r² within 3 % (issue 3). Measured here: +0.2 %, −1.8 %, −0.6 % (the
     # tilted plate read −3.6 % with the voxel distance transform as wall distance). Over 48 caps
     # per radius (θ_w 30°–135°, three plate normals) all are within 2.5 % but θ_w = 30° on
