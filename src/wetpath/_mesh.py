@@ -100,7 +100,7 @@ def band_levels(sigma: float) -> np.ndarray:
 
     Measured on 48 spherical caps of radius 30 (θ_w 30°–135°, three plate normals, random
     offsets, σ = 1): starting at 2σ lets the rounded crease into ∫_nw K (topological angle 2.7°
-    high on average); 3σ … 3σ + 3 extrapolates farther from fewer levels (rms 1.3°, worst 4.1°);
+    low on average); 3σ … 3σ + 3 extrapolates farther from fewer levels (rms 1.3°, worst 4.1°);
     2.5σ … 2.5σ + 4 gives rms 0.9°, worst 2.5°.
     """
     return BAND_START * sigma + np.linspace(0.0, BAND_WIDTH, BAND_LEVELS)
