@@ -13,11 +13,12 @@ bounded by a few chunks:
    array or the field of view are *border* faces and are left out of every sum; the other faces
    are classified n–w or n–s by the phase across them;
 4. **wall-distance band extrapolation** (issue 3): a quantity Q(m) summed over the part of the
-   mesh farther than m from the solid is evaluated at levels m = 2.5σ … 2.5σ + 4 and a fit in m
-   is evaluated at m = 0. This removes the rounded crease that blur and smoothing leave at the
-   contact line (which otherwise leaks half the crease's concentrated Gaussian curvature into
-   ∫_nw K). Linear fits for the n–w area and ∫_nw K (exact for a spherical cap on a plane: the
-   zone area and zone ∫K are linear in height), quadratic fits for the square of the
+   mesh farther than m from the solid is evaluated at levels m = 2.5σ … 2.5σ + 4 (up to
+   2.5σ + 6 where the interface rises high enough) and a fit in m is evaluated at m = 0. This
+   removes the rounded crease that blur and smoothing leave at the contact line (which
+   otherwise leaks half the crease's concentrated Gaussian curvature into ∫_nw K). Linear
+   fits for the n–w area and ∫_nw K (exact for a spherical cap on a plane: the zone area and
+   zone ∫K are linear in height), quadratic fits for the square of the
    contact-line length and for the footprint (n–s) area, which is the flux of ∇d through the
    mesh below m (divergence theorem; it does not see the shape of the crease) — both exact for
    a cap on a plane and for a meniscus in a tube;
@@ -29,7 +30,8 @@ bounded by a few chunks:
 6. Gaussian curvature by angle deficits (discrete Gauss–Bonnet: Σ deficits = 2π(V − E + F));
 7. contact loops as the level curves d = m of the mesh (boundary cycles of the n–w patch),
    their length, and along them the solid's normal and geodesic curvature, ∫ k_n^s ds = Σ Δt·ν_s
-   and ∫ k_g^s ds = Σ Δt·(ν_s × t) (inputs of the curvature-corrected topological angle);
+   and ∫ k_g^s ds = Σ Δt·(ν_s × t) (inputs of the curvature-corrected topological angle; fitted
+   over the narrow band 2.5σ … 2.5σ + 4 only);
 8. χ of the closed n mesh, (V − E + F)/2, and χ of the n–w patch.
 
 Every count and sum is attributed to the chunk that owns the lattice cell of the element (face,
@@ -78,10 +80,11 @@ from ._errors import WetpathError
 
 TAUBIN_LAMBDA, TAUBIN_MU, TAUBIN_ITERATIONS = 0.5, -0.53, 10
 BAND_START = 2.5          # in σ: the band starts this far from the solid
-BAND_WIDTH = 4.0          # voxels: band levels m = 2.5σ ... 2.5σ + BAND_WIDTH
-BAND_LEVELS = 9
+BAND_WIDTH = 6.0          # voxels: band levels m = 2.5σ ... 2.5σ + BAND_WIDTH (widest band)
+BAND_LEVELS = 13
+BAND_MIN_WIDTH = 4.0      # voxels: every resolved cluster's band is at least this wide
 CURVATURE_DISTANCE = 4.0  # in σ: vertices used for κ are at least this far from the solid
-RESOLVE_MARGIN = 0.5      # voxels above the top band level the interface must reach
+RESOLVE_MARGIN = 0.5      # voxels above the top level used that the interface must reach
 DMAX_REPORTED = 3.0       # voxels above the top band level: cap of max_wall_distance
 RESOLVE_FRACTION = 0.5   # share of the n–w area that must lie beyond the first band level
 HALO_EXTRA = 8           # voxels beyond the blur radius: smoothing rings and wall distances
@@ -96,12 +99,15 @@ COLUMNS = ["cluster", "area_nw_mesh", "area_ns_mesh", "curvature_nw", "curvature
 
 
 def band_levels(sigma: float) -> np.ndarray:
-    """Wall distances m (voxels) at which band sums are evaluated: 2.5σ … 2.5σ + 4.
+    """Wall distances m (voxels) at which band sums are evaluated: 2.5σ … 2.5σ + 6, every
+    0.5 voxel; a cluster uses the levels up to its highest point less ``RESOLVE_MARGIN``, and at
+    least up to 2.5σ + ``BAND_MIN_WIDTH``.
 
-    Measured on 48 spherical caps of radius 30 (θ_w 30°–135°, three plate normals, random
-    offsets, σ = 1): starting at 2σ lets the rounded crease into ∫_nw K (topological angle 2.7°
-    low on average); 3σ … 3σ + 3 extrapolates farther from fewer levels (rms 1.3°, worst 4.1°);
-    2.5σ … 2.5σ + 4 gives rms 0.9°, worst 2.5°.
+    Measured on spherical caps (θ_w 30°–135°, three plate normals, random offsets, σ = 1),
+    topological angle: starting at 2σ lets the rounded crease into ∫_nw K (2.7° low on average
+    at R = 30); the fixed band 3σ … 3σ + 3 gave rms 1.3°, worst 4.1° at R = 30; 2.5σ … 2.5σ + 4
+    rms 0.9°/1.3°/1.4°, worst 2.5°/4.4°/3.3° at R = 30/20/15; widening to 2.5σ + 6 where
+    possible rms 0.9°/0.9°/1.0°, worst 2.5°/2.5°/2.3°.
     """
     return BAND_START * sigma + np.linspace(0.0, BAND_WIDTH, BAND_LEVELS)
 
@@ -233,6 +239,33 @@ def _plane_distance(d2, idx, solid, bcoord, bnormal, bheight, big, clip):
     return out
 
 
+def _face_neighbour(mask: np.ndarray) -> np.ndarray:
+    """Voxels with a face-neighbour in ``mask`` (nothing beyond the array): a binary dilation by
+    the 6-neighbourhood without the centre, by array shifts."""
+    out = np.zeros_like(mask)
+    for ax in range(3):
+        lo = [slice(None)] * 3
+        hi = [slice(None)] * 3
+        lo[ax], hi[ax] = slice(None, -1), slice(1, None)
+        out[tuple(lo)] |= mask[tuple(hi)]
+        out[tuple(hi)] |= mask[tuple(lo)]
+    return out
+
+
+def _blur_and_gradient(mask: np.ndarray, at: tuple) -> list[np.ndarray]:
+    """Gaussian blur (``SOLID_BLUR``) of ``mask`` and its derivatives along z, y, x, sampled at
+    the voxels ``at``: nine separable passes sharing the smoothed intermediates (equal to
+    ``ndimage.gaussian_filter`` with ``order`` (0,0,0), (1,0,0), (0,1,0), (0,0,1))."""
+    def g(x, axis, order):
+        return ndimage.gaussian_filter1d(x, SOLID_BLUR, axis=axis, order=order, mode="nearest")
+
+    u = mask.astype(np.float32)
+    z0 = g(u, 0, 0)
+    zy = g(z0, 1, 0)
+    fields = (g(zy, 2, 0), g(g(g(u, 0, 1), 1, 0), 2, 0), g(g(z0, 1, 1), 2, 0), g(zy, 2, 1))
+    return [f[at].astype(np.float64) for f in fields]
+
+
 def wall_distance(solid: np.ndarray, clip: float, pore: np.ndarray | None = None) -> np.ndarray:
     """Signed distance (voxels) to the solid surface, positive away from the solid, clipped to
     ±``clip`` and smoothed by a Gaussian of 1 voxel.
@@ -262,22 +295,19 @@ def wall_distance(solid: np.ndarray, clip: float, pore: np.ndarray | None = None
     out = np.full(solid.shape, clip, np.float32)
     solid = np.ascontiguousarray(solid, dtype=np.bool_)
     pore = ~solid if pore is None else np.asarray(pore, dtype=np.bool_) & ~solid
-    bnd = solid & ndimage.binary_dilation(pore, ndimage.generate_binary_structure(3, 1))
+    bnd = solid & _face_neighbour(pore)
     if not bnd.any():
         if solid.any() and not pore.any():
             out[...] = -clip
         return out
     bcoord = np.argwhere(bnd)
     at = tuple(bcoord.T)
-    orders = ((0, 0, 0), (1, 0, 0), (0, 1, 0), (0, 0, 1))
-    a = [ndimage.gaussian_filter(pore.astype(np.float32), SOLID_BLUR, order=o,
-                                 mode="nearest")[at].astype(np.float64) for o in orders]
+    a = _blur_and_gradient(pore, at)
     known = solid | pore
     if known.all():
         p, grad = a[0], np.stack(a[1:], axis=1)
     else:   # normalised convolution: P = G*pore / G*known, ∇P by the quotient rule
-        b = [ndimage.gaussian_filter(known.astype(np.float32), SOLID_BLUR, order=o,
-                                     mode="nearest")[at].astype(np.float64) for o in orders]
+        b = _blur_and_gradient(known, at)
         p = a[0] / np.maximum(b[0], 1e-6)
         grad = np.stack([ai * b[0] - a[0] * bi for ai, bi in zip(a[1:], b[1:], strict=True)],
                         axis=1)
@@ -736,7 +766,7 @@ def _cluster_box_sums(lab, clu, cid, sd, lo, own_lo, own_hi, sigma, levels, key_
     res["kA"] = float(np.sum((kc * a_mix)[far]))
     res["k2A"] = float(np.sum((kc * kc * a_mix)[far]))
     res["wA"] = float(np.sum(a_mix[far]))
-    band = good_v & (d >= levels[0]) & (d <= levels[-1])
+    band = good_v & (d >= levels[0]) & (d <= levels[0] + BAND_MIN_WIDTH)
     res["cosA"] = float(np.sum((a_mix * np.einsum("ij,ij->i", vnorm, nu))[band]))
     res["cosW"] = float(np.sum(a_mix[band]))
     if good_v.any():
@@ -939,21 +969,32 @@ def _finish(acc, ncl, levels, sigma, h) -> pd.DataFrame:
         has_mesh = tot["F"] > 0
         # resolvable: the interface rises above the band, and most of its n–w area lies there
         # (otherwise the band sees too little of it: narrow pores, films)
-        resolved = bool(has_mesh and dmax >= levels[-1] + RESOLVE_MARGIN
+        narrow = levels[0] + BAND_MIN_WIDTH
+        resolved = bool(has_mesh and dmax >= narrow + RESOLVE_MARGIN
                         and tot["A"][0] >= RESOLVE_FRACTION * tot["Anw_raw"])
         nan = float("nan")
         touches_solid = bool(np.any(np.asarray(tot["L"]) > 0))
         if resolved:
-            a_nw = _fit_at_zero(levels, tot["A"], 1)
-            k_nw = _fit_at_zero(levels, tot["K"], 1)
-            a_ns = _fit_at_zero(levels, tot["Lid"], 2) if touches_solid else 0.0
+            # the band widens up to BAND_WIDTH where the interface rises high enough: a longer
+            # lever for the fits (measured on caps, R = 15–30: topological angle worst 4.4° →
+            # 2.5° at R = 20, footprint area worst 4.7 % → 2.9 %)
+            use = levels <= max(narrow, dmax - RESOLVE_MARGIN) + 1e-9
+            lv = levels[use]
+            tot = {k: (np.asarray(v)[use] if k in ("A", "K", "Lid", "L") else v)
+                   for k, v in tot.items()}
+            a_nw = _fit_at_zero(lv, tot["A"], 1)
+            k_nw = _fit_at_zero(lv, tot["K"], 1)
+            a_ns = _fit_at_zero(lv, tot["Lid"], 2) if touches_solid else 0.0
             # L² quadratic in m: exact for a spherical cap on a plane (L = 2π√(R² − (c − m)²)) and
             # for a meniscus in a tube (L = 2π(r − m)); a quadratic in L itself misses the cap's
             # third derivative (measured: 30° caps +3–4 %, 135° caps −2.4 to −4.8 % at R = 20–30)
-            length = math.sqrt(max(_fit_at_zero(levels, np.square(tot["L"]), 2), 0.0)) \
+            length = math.sqrt(max(_fit_at_zero(lv, np.square(tot["L"]), 2), 0.0)) \
                 if touches_solid else 0.0
-            geo = _fit_at_zero(levels, tot["G"], 1)
-            nrm = _fit_at_zero(levels, tot["N"], 1)
+            # the solid's curvature along the line: narrow band (on flat plates G = 2π, N = 0
+            # either way; the wider levels would need a wider chunk halo for 1e-4 invariance)
+            thin = levels <= narrow + 1e-9
+            geo = _fit_at_zero(levels[thin], np.asarray(tot["G"])[thin], 1)
+            nrm = _fit_at_zero(levels[thin], np.asarray(tot["N"])[thin], 1)
             chi_nw = float(tot["chi"][0])
         else:
             # not band-extrapolable: areas of faces classified by the phase across them
