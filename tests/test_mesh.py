@@ -19,9 +19,11 @@ from wetpath._mesh import (
     face_geometry,
     mesh_measures,
     mesh_totals,
+    nearest_feature,
     smoothed_mesh,
     squared_distance,
     vertex_measures,
+    wall_distance,
 )
 
 
@@ -88,13 +90,15 @@ def test_cap_on_plate(theta, normal):
     assert row.resolved
     assert row.contact_loops == 1
     assert row.area_nw_mesh == pytest.approx(exact["area_nw"], rel=0.03)
-    assert row.contact_length == pytest.approx(exact["contact_length"], rel=0.03)
-    # footprint area A_ns = π r²: within 3 % at θ_w = 90° on an axis-aligned plate. Elsewhere a
-    # voxelised axis-aligned plate fixes the plate height only to ±0.5 voxel, which moves A_ns by
-    # ±π R |cos θ_w| (closed form dA_ns/dh = 2π R cos θ_w): ±3.3 % at 60°, R = 20; on tilted plates
-    # we measured −3.6 % at R = 20 and 30. 5 % is kept as the regression bound there.
-    tol = 0.03 if (theta == 90 and normal == (1, 0, 0)) else 0.05
-    assert row.area_ns_mesh == pytest.approx(exact["area_ns"], rel=tol)
+    # contact length 2πr within 3 % (issue 3); measured here +0.5 %, −0.2 %, +0.1 %; over 48 caps
+    # per radius (θ_w 30°–135°, three plate normals) rms 0.5 % (R = 20) and 0.4 % (R = 30), worst
+    # 1.4 % (fitting L itself rather than L² read 30° caps 3–4 % long, 135° caps up to 4.8 % short)
+    assert row.contact_length == pytest.approx(exact["contact_length"], rel=0.015)
+    # footprint area A_ns = π r² within 3 % (issue 3). Measured here: +0.4 %, −1.0 %, −0.3 % (the
+    # tilted plate read −3.6 % with the voxel distance transform as wall distance). Over 48 caps
+    # per radius (θ_w 30°–135°, three plate normals, two offsets): rms 1.1 % and 0.6 %, worst
+    # 2.9 % (R = 20) and 2.2 % (R = 30).
+    assert row.area_ns_mesh == pytest.approx(exact["area_ns"], rel=0.03)
     assert row.curvature_nw == pytest.approx(exact["curvature_nw"], rel=0.03)
     # a flat plate: ∫ k_n^s ds = 0 and ∫ k_g^s ds = 2π around the footprint (Gauss–Bonnet, disc)
     assert row.normal_curv_solid_line == pytest.approx(0.0, abs=0.05)
@@ -129,6 +133,35 @@ def test_distance_transform_matches_scipy():
     np.testing.assert_allclose(squared_distance(solid, 100.0), ref, atol=1e-9)
     capped = squared_distance(solid, 2.0)
     np.testing.assert_allclose(np.minimum(capped, 4.0), np.minimum(ref, 4.0), atol=1e-9)
+    # nearest feature voxel: scipy's feature transform (ties may pick another voxel at the same
+    # distance, so compare the distance to the voxel returned)
+    d2, rank = nearest_feature(solid, 100.0)
+    coords = np.argwhere(solid)[rank]
+    grid = np.indices(solid.shape).transpose(1, 2, 3, 0)
+    np.testing.assert_allclose(np.sum((grid - coords) ** 2, axis=-1), ref, atol=1e-9)
+    np.testing.assert_allclose(d2, ref, atol=1e-9)
+
+
+@pytest.mark.parametrize("normal", [(1, 0.35, 0.2), (0.3, 1, 0.5), (1, 1, 1), (1, 0, 0)])
+def test_wall_distance_to_voxelised_planes(normal):
+    # closed form: the height above the plane h = n·x − c of a half-space labelled by voxel
+    # centres. Rational planes ((1, 0, 0), (1, 1, 1)) sit half-way between two lattice planes of
+    # voxel centres (any plane in that gap gives the same voxels); others at random offsets.
+    rng = np.random.default_rng(7)
+    n = synthetic.unit(normal)
+    rational = normal in ((1, 0, 0), (1, 1, 1))
+    grid = np.indices((40, 40, 40), dtype=float) - 19.5     # centres at half-integers
+    for _ in range(3):
+        c = 0.0 if rational else rng.uniform(-0.5, 0.5)
+        h = np.tensordot(n, grid, axes=1) - c
+        d = wall_distance(h < 0, 14.0)
+        core = (slice(10, 30),) * 3
+        near = (h[core] >= 0) & (h[core] <= 8)       # the band and a margin above it
+        err = (d - h)[core][near]
+        # measured here: |mean| ≤ 0.043 voxel, worst 0.08 voxel. The voxel distance transform
+        # minus half a voxel read 0.05–0.36 voxel low on the tilted planes, growing with height.
+        assert abs(err.mean()) <= 0.05
+        assert np.abs(err).max() <= 0.1
 
 
 def test_voxel_size_scales_lengths():
@@ -195,3 +228,16 @@ def test_compiled_kernels_match_numpy_oracles():
     args = (d3.mean(axis=1), rng.random(nf) > 0.9, faces, face_edges, rng.random(nv) > 0.3,
             rng.random(len(edges)) > 0.3, rng.random(nf) > 0.3, m.band_levels(1.0), len(edges))
     np.testing.assert_array_equal(m._patch_euler_kernel(*args), m._patch_euler(*args))
+
+
+def test_shared_blur_passes_match_scipy():
+    from wetpath import _mesh as m
+
+    mask = synthetic.random_medium((30, 33, 36), seed=2) != 1
+    at = tuple(np.argwhere(mask).T)
+    # reference: scipy's Gaussian filter and its derivatives along z, y, x
+    for order, got in zip(((0, 0, 0), (1, 0, 0), (0, 1, 0), (0, 0, 1)),
+                          m._blur_and_gradient(mask, at), strict=True):
+        ref = ndimage.gaussian_filter(mask.astype(np.float32), m.SOLID_BLUR, order=order,
+                                      mode="nearest")[at]
+        np.testing.assert_allclose(got, ref, rtol=0, atol=1e-7)

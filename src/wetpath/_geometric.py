@@ -64,12 +64,12 @@ _SLOPE_SCALE = 3.0
 """Weight (voxels) of the slope equations against the position equations in the joint fit."""
 _MIN_FIT = 12
 """Fewest n–w vertices for a quadric fit (6 coefficients)."""
-_MIN_SPAN = 1.75
+_MIN_SPAN = 2.0
 """Least spread (voxels) of the fitted n–w vertices' wall distances. Thinner patches extrapolate a
 nearly flat strip (measured here, two offsets each, axis-aligned and tilted plates): a 150° cap of
-radius 30 voxels (4 voxels high) has spans 1.2–1.5 and reads 152° where its span passes 1.5; a 135°
-cap of radius 15 (4.4 voxels high) spans 1.50–1.56 and reads 3.6–4.3° high; a 150° cap of radius 40
-(span 2.0–2.4) reads within 3.4° and a 140° cap of radius 30 (span 3.0–3.4) within 1°."""
+radius 30 voxels (4 voxels high) spans 1.43–1.50; a 135° cap of radius 15 (4.4 voxels high) spans
+1.48–1.84 and reads 3.2–3.9° high where it passes 1.75; a 150° cap of radius 40 (span 2.2–2.4)
+reads within 3.8° and a 140° cap of radius 30 (span 3.2–3.4) within 1°."""
 BIN_EDGES_DEG = np.arange(0.0, 180.0 + 5.0, 5.0)
 """Fixed 5° histogram bins from 0° to 180°."""
 
