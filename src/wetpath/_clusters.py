@@ -32,6 +32,7 @@ from scipy import ndimage
 from ._errors import WetpathError
 from ._lattice import (
     CUBE_CORNERS,
+    Scratch,
     _check_voxel_size,
     _class_factors,
     _depth,
@@ -42,7 +43,7 @@ from ._lattice import (
     run_parallel,
 )
 
-__all__ = ["label_clusters", "cluster_lattice_measures", "CLUSTER_COLUMNS"]
+__all__ = ["label_clusters", "cluster_dtype", "cluster_lattice_measures", "CLUSTER_COLUMNS"]
 
 CLUSTER_COLUMNS = ["cluster", "voxels", "volume", "centroid_z", "centroid_y", "centroid_x",
                    "bbox_z0", "bbox_y0", "bbox_x0", "bbox_z1", "bbox_y1", "bbox_x1",
@@ -69,7 +70,8 @@ def _find(parent, i):
 
 @njit(cache=True, nogil=True)
 def _scan_labels(codes, out, parent, first, offs, right):
-    """Raster-scan union–find labelling of code 3 in a contiguous slab.
+    """Raster-scan union–find labelling of code 3 in a contiguous slab, voxel by voxel (the
+    reference for :func:`_scan_runs`).
 
     ``out`` receives provisional labels; ``parent`` the union–find forest in which every root is
     the smallest provisional label of its component (created first, so at the component's first
@@ -135,6 +137,131 @@ def _scan_labels(codes, out, parent, first, offs, right):
 
 
 @njit(cache=True, nogil=True)
+def _row_runs(line, starts, ends, lab, nr):
+    """Append the runs of code 3 of one row; returns the new run count (capacity checked by the
+    caller: a row holds at most (nx + 1) // 2 runs)."""
+    nx = line.size
+    x = 0
+    while x < nx:
+        if line[x] != 3:
+            x += 1
+            continue
+        x0 = x
+        while x < nx and line[x] == 3:
+            x += 1
+        starts[nr] = x0
+        ends[nr] = x
+        lab[nr] = 0
+        nr += 1
+    return nr
+
+
+@njit(cache=True, nogil=True)
+def _unite_rows(r0, r1, p, p1, starts, ends, lab, parent, reach):
+    """Unite runs r0 … r1 − 1 of a row with the runs p … p1 − 1 of a preceding row they touch."""
+    for r in range(r0, r1):
+        s0, s1 = starts[r], ends[r]
+        while p < p1 and ends[p] + reach <= s0:
+            p += 1
+        k = p
+        while k < p1 and starts[k] < s1 + reach:
+            rv = _find(parent, lab[k])
+            cur = lab[r]
+            if cur == 0:
+                lab[r] = rv
+            else:
+                rc = _find(parent, cur)
+                if rv < rc:
+                    parent[rc] = rv
+                    lab[r] = rv
+                elif rc < rv:
+                    parent[rv] = rc
+            k += 1
+
+
+@njit(cache=True, nogil=True)
+def _new_labels(r0, r1, row, nx, starts, lab, parent, first, n):
+    """A new label for every run of r0 … r1 − 1 that touches no earlier run; returns n."""
+    for r in range(r0, r1):
+        if lab[r] == 0:
+            n += 1
+            parent[n] = n
+            first[n] = row * nx + starts[r]
+            lab[r] = n
+    return n
+
+
+@njit(cache=True, nogil=True)
+def _grown(arr, need):
+    """``arr`` itself when it holds ``need`` elements, else a copy at least twice as long."""
+    if need <= arr.size:
+        return arr
+    bigger = np.empty(max(2 * arr.size, need), arr.dtype)
+    bigger[:arr.size] = arr
+    return bigger
+
+
+@njit(cache=True, nogil=True)
+def _scan_runs(codes, starts, ends, rowptr, lab, parent, first, reach):
+    """Raster-scan union–find labelling of code 3 in a contiguous slab, run by run.
+
+    Each row's runs of code 3 along x are found first (run r spans x ∈ [starts[r], ends[r]) of row
+    (z, y), runs ``rowptr[z·ny + y]`` … ``rowptr[z·ny + y + 1] − 1``); a run is then united with
+    the runs it touches in the preceding rows (z, y − 1) and, with ``reach`` = 1
+    (26-connectivity), (z − 1, y − 1 … y + 1), or only (z − 1, y) with ``reach`` = 0
+    (6-connectivity). A run that touches none gets a new provisional label, so labels are created
+    in C order at the first voxel of their run and — as in :func:`_scan_labels` — the root of
+    every set is its smallest label, created at the component's first voxel in C order;
+    ``first[l]`` is that voxel's C-order index in the slab. ``lab[r]`` is a label of run r's set.
+    Arrays grow when full; returns (n labels, runs, starts, ends, lab, parent, first).
+    """
+    nz, ny, nx = codes.shape
+    nr = 0
+    n = 0
+    for z in range(nz):
+        for y in range(ny):
+            row = z * ny + y
+            rowptr[row] = nr
+            need = nr + (nx + 1) // 2 + 1
+            starts, ends, lab = _grown(starts, need), _grown(ends, need), _grown(lab, need)
+            nr = _row_runs(codes[z, y], starts, ends, lab, nr)
+            r0, r1 = rowptr[row], nr
+            if r0 == r1:
+                continue
+            if y > 0:                            # (z, y − 1)
+                _unite_rows(r0, r1, rowptr[row - 1], r0, starts, ends, lab, parent, reach)
+            if z > 0:                            # (z − 1, y + dy)
+                for yy in range(max(y - reach, 0), min(y + reach + 1, ny)):
+                    nbr = (z - 1) * ny + yy
+                    _unite_rows(r0, r1, rowptr[nbr], rowptr[nbr + 1], starts, ends, lab, parent,
+                                reach)
+            need = n + (r1 - r0) + 1
+            parent, first = _grown(parent, need), _grown(first, need)
+            n = _new_labels(r0, r1, row, nx, starts, lab, parent, first, n)
+    rowptr[nz * ny] = nr
+    return n, nr, starts, ends, lab, parent, first
+
+
+@njit(cache=True, nogil=True)
+def _paint_runs(out, row0, starts, ends, rowptr, lab, table):
+    """Write ``table[lab[r]]`` over every run r of rows row0 … row0 + out rows − 1 (``out``: a
+    contiguous (rows, nx) array, zero elsewhere)."""
+    nrows, nx = out.shape
+    for i in range(nrows):
+        line = out[i]
+        x = 0
+        for r in range(rowptr[row0 + i], rowptr[row0 + i + 1]):
+            for u in range(x, starts[r]):
+                line[u] = 0
+            v = table[lab[r]]
+            for u in range(starts[r], ends[r]):
+                line[u] = v
+            x = ends[r]
+        for u in range(x, nx):
+            line[u] = 0
+
+
+@njit(cache=True, nogil=True)
 def _compact(parent, first, n, base):
     """Provisional label -> local id 1..m in order of first voxel; first voxel (global C index)
     of each local id."""
@@ -158,16 +285,6 @@ def _roots(parent):
     for i in range(parent.size):
         out[i] = _find(parent, i)
     return out
-
-
-@njit(cache=True, nogil=True)
-def _remap(labels, table):
-    """In place: label l > 0 becomes table[l]."""
-    flat = labels.ravel()
-    for i in range(flat.size):
-        lab = flat[i]
-        if lab > 0:
-            flat[i] = table[lab]
 
 
 def _neighbour_offsets(connectivity: int) -> tuple[np.ndarray, np.ndarray]:
@@ -214,6 +331,14 @@ def _unite_faces(lower, upper, off_lower, off_upper, parent, firsts, reach):
                             parent[ra] = rb
 
 
+def cluster_dtype(n: int) -> np.dtype:
+    """Smallest integer dtype that holds cluster ids 0..n: uint16 up to 65 535, else int32, else
+    int64 (the cluster store is written in it: 2 bytes per voxel instead of 4 for most steps)."""
+    if n <= np.iinfo(np.uint16).max:
+        return np.dtype(np.uint16)
+    return np.dtype(np.int32 if n <= np.iinfo(np.int32).max else np.int64)
+
+
 def label_clusters(labels, *, connectivity: int = 26, chunks=None, threads: int | None = None,
                    out=None) -> tuple[np.ndarray, int]:
     """Label the connected components of the non-wetting phase, slab by slab.
@@ -229,15 +354,17 @@ def label_clusters(labels, *, connectivity: int = 26, chunks=None, threads: int 
         else 64. The result does not depend on it.
     threads : int, optional
         Worker threads (None: all cores).
-    out : ndarray or zarr array, optional
+    out : ndarray, zarr array or callable, optional
         Integer array of the same shape to write into; a zarr array keeps the labels out of core
-        (each slab is then labelled twice instead of held in memory).
+        (each slab is then scanned twice instead of held in memory). A callable ``out(n)`` is
+        called once the number of clusters ``n`` is known (after the first pass) and returns the
+        array to write into, e.g. a zarr array of :func:`cluster_dtype` ``(n)``.
 
     Returns
     -------
     cluster_labels : ndarray or zarr array of int32 (int64 above 2³¹ − 1 voxels)
         0 where not non-wetting, else the cluster id; ids 1..n in the order of each cluster's first
-        voxel in C order.
+        voxel in C order. The dtype of ``out`` when given.
     n : int
         Number of clusters.
 
@@ -248,49 +375,40 @@ def label_clusters(labels, *, connectivity: int = 26, chunks=None, threads: int 
     src = _Source(labels, step="clusters")
     nz, ny, nx = src.shape
     dtype = np.int32 if nz * ny * nx < 2**31 - 1 else np.int64
-    in_memory = out is None or isinstance(out, np.ndarray)
-    if out is None:
-        out = np.empty(src.shape, dtype)
-    if tuple(out.shape) != src.shape or np.dtype(out.dtype).kind not in "iu":
-        raise WetpathError(f"out must be an integer array of shape {src.shape}, got "
-                           f"{tuple(out.shape)} {out.dtype}", step="clusters")
-    if np.dtype(out.dtype).itemsize < np.dtype(dtype).itemsize:
-        raise WetpathError(f"out dtype {out.dtype} is too small for {nz * ny * nx} voxels",
-                           step="clusters")
-    if chunks is None and not in_memory:
-        chunks = out.chunks[0]
+    factory = out if callable(out) else None
+    if factory is None:
+        out = _check_out(np.empty(src.shape, dtype) if out is None else out, src.shape,
+                         nz * ny * nx)
+        if chunks is None and not isinstance(out, np.ndarray):
+            chunks = out.chunks[0]
     depth = _depth(chunks, src)
     starts = list(range(0, nz, depth))
+    reach = 0 if connectivity == 6 else 1
+    _structure(connectivity)
 
-    offs, right = _neighbour_offsets(connectivity)
     # per-worker buffers, reused across slabs (first touch of fresh memory is slow)
     nw = resolve_threads(threads)
-    locals_: list[np.ndarray | None] = [None] * nw
-    forests = [[np.empty(1 << 16, np.int64), np.empty(1 << 16, np.int64)] for _ in range(nw)]
+    states = [_ScanState(depth * ny + 1) for _ in range(nw)]
 
-    def label_slab(w: int, a: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """Provisional labels of slab [a, a + depth) (in ``out`` when in memory), the map
-        provisional -> local id and the first voxel of each local id."""
-        planes = src.read(a, min(a + depth, nz))
-        t = planes.shape[0]
+    def scan(w: int, a: int) -> tuple[_ScanState, int]:
+        """Runs and provisional labels of slab [a, a + depth); returns the worker state and the
+        number of provisional labels."""
+        st = states[w]
+        planes = src.region((a, 0, 0), (min(a + depth, nz), ny, nx), st.scratch, "codes")
         _check_codes(planes)
-        planes = planes.astype(np.uint8, copy=False)
-        target = out[a:a + t] if in_memory else None
-        if target is None or not target.flags.c_contiguous:
-            if locals_[w] is None:
-                locals_[w] = np.empty((depth, ny, nx), dtype)
-            target = locals_[w][:t]
-        n, forests[w][0], forests[w][1] = _scan_labels(planes, target, forests[w][0],
-                                                       forests[w][1], offs, right)
-        if in_memory and not np.may_share_memory(target, out):
-            out[a:a + t] = target
-        local, first = _compact(forests[w][0], forests[w][1], n, a * ny * nx)
-        return target, local, first
+        n, _, st.starts, st.ends, st.lab, st.parent, st.first = _scan_runs(
+            planes.astype(np.uint8, copy=False), st.starts, st.ends, st.rowptr, st.lab,
+            st.parent, st.first, reach)
+        return st, n
 
     def first_pass(w, a):
-        prov, local, first = label_slab(w, a)
-        faces = local.astype(np.int32)[prov[0]], local.astype(np.int32)[prov[-1]]
-        return local, first, *faces
+        st, n = scan(w, a)
+        t = min(a + depth, nz) - a
+        local, first = _compact(st.parent, st.first, n, a * ny * nx)
+        faces = np.empty((2, ny, nx), np.int32)
+        _paint_runs(faces[0], 0, st.starts, st.ends, st.rowptr, st.lab, local)
+        _paint_runs(faces[1], (t - 1) * ny, st.starts, st.ends, st.rowptr, st.lab, local)
+        return local, first, faces[0], faces[1]
 
     res = run_parallel(iter(starts), first_pass, threads)
     counts = np.array([r[1].size for r in res], np.int64)
@@ -308,30 +426,61 @@ def label_clusters(labels, *, connectivity: int = 26, chunks=None, threads: int 
     rank = np.zeros(total + 1, np.int64)     # roots ordered by first voxel: final ids 1..n
     root_ids = np.flatnonzero(is_root) + 1
     rank[root_ids[np.argsort(firsts[root_ids], kind="stable")]] = np.arange(1, ncomp + 1)
-    lut = rank[roots].astype(dtype)
+    lut = rank[roots]
+    if factory is not None:
+        out = _check_out(factory(ncomp), src.shape, ncomp)
+    odtype = np.dtype(out.dtype)
+    if ncomp > np.iinfo(odtype).max:
+        raise WetpathError(f"out dtype {odtype} is too small for {ncomp} clusters",
+                           step="clusters")
+    in_memory = isinstance(out, np.ndarray)
 
     def second_pass(w, s):
         a = starts[s]
+        st, _ = scan(w, a)
+        t = min(a + depth, nz) - a
         local = res[s][0]
         table = np.where(local > 0, lut[np.where(local > 0, local + offsets[s], 0)], 0)
+        table = table.astype(odtype)
+        target = out[a:a + t] if in_memory else None
+        if target is None or not target.flags.c_contiguous:
+            target = st.scratch.get("out", (t, ny, nx), odtype)
+        _paint_runs(target.reshape(t * ny, nx), 0, st.starts, st.ends, st.rowptr, st.lab, table)
         if in_memory:
-            view = out[a:a + depth]
-            if view.flags.c_contiguous:
-                _remap(view, table.astype(view.dtype))
-            else:
-                prov = np.ascontiguousarray(view)
-                _remap(prov, table.astype(prov.dtype))
-                out[a:a + depth] = prov
-        else:
-            prov, _, _ = label_slab(w, a)
-            _remap(prov, table.astype(prov.dtype))
-            # write chunk by chunk in y: bounded encoder memory
-            step = out.chunks[1]
-            for y0 in range(0, ny, step):
-                out[a:a + prov.shape[0], y0:y0 + step] = prov[:, y0:y0 + step]
+            if not np.may_share_memory(target, out):
+                out[a:a + t] = target
+            return
+        # write chunk by chunk in y: bounded encoder memory
+        step = out.chunks[1]
+        for y0 in range(0, ny, step):
+            out[a:a + t, y0:y0 + step] = target[:, y0:y0 + step]
 
     run_parallel(iter(range(len(starts))), second_pass, threads)
     return out, int(ncomp)
+
+
+class _ScanState:
+    """Reused buffers of one labelling worker: runs, union–find forest, slab reads."""
+
+    def __init__(self, rows: int):
+        self.starts = np.empty(1 << 16, np.int32)
+        self.ends = np.empty(1 << 16, np.int32)
+        self.lab = np.empty(1 << 16, np.int64)
+        self.parent = np.empty(1 << 16, np.int64)
+        self.first = np.empty(1 << 16, np.int64)
+        self.rowptr = np.empty(rows, np.int64)
+        self.scratch = Scratch()
+
+
+def _check_out(out, shape: tuple[int, ...], largest: int):
+    """``out`` must be an integer array of ``shape`` whose dtype holds ids up to ``largest``."""
+    if tuple(out.shape) != shape or np.dtype(out.dtype).kind not in "iu":
+        raise WetpathError(f"out must be an integer array of shape {shape}, got "
+                           f"{tuple(out.shape)} {out.dtype}", step="clusters")
+    if largest > np.iinfo(np.dtype(out.dtype)).max:
+        raise WetpathError(f"out dtype {out.dtype} is too small for {largest} clusters",
+                           step="clusters")
+    return out
 
 
 # ----------------------------------------------------------------------------- per-cluster measures

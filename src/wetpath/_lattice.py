@@ -245,6 +245,9 @@ class _Source:
         self.name, self.step = name, step
         self.is_numpy = isinstance(arr, np.ndarray)
         self.is_dask = hasattr(arr, "dask") and hasattr(arr, "compute")
+        # zarr arrays decode straight into a caller's buffer (no fresh allocation per read)
+        self.into = (not self.is_numpy and not self.is_dask
+                     and hasattr(arr, "get_basic_selection") and hasattr(arr, "metadata"))
 
     def default_depth(self, fallback: int = 64) -> int:
         chunks = self.chunk_shape()
@@ -254,9 +257,23 @@ class _Source:
         """Planes [z0, z1) (clipped to the array), whole (y, x) extent, C-contiguous."""
         return self.region((z0, 0, 0), (z1,) + self.shape[1:])
 
-    def region(self, lo, hi) -> np.ndarray:
-        """Box [lo, hi) clipped to the array, C-contiguous (a view for numpy when possible)."""
+    def region(self, lo, hi, scratch: Scratch | None = None, key: str = "region") -> np.ndarray:
+        """Box [lo, hi) clipped to the array, C-contiguous (a view for numpy when possible).
+
+        With ``scratch``, a zarr array is decoded into the reused buffer ``key`` of it and a view
+        of that buffer is returned: valid until the next read into the same key. Newly allocated
+        memory is slow to touch the first time, so passes reuse one buffer per worker.
+        """
         sl = tuple(slice(max(a, 0), min(b, n)) for a, b, n in zip(lo, hi, self.shape, strict=True))
+        if scratch is not None and self.into:
+            from zarr.core.buffer import default_buffer_prototype
+
+            shape = tuple(max(s.stop - s.start, 0) for s in sl)
+            view = scratch.get(key, shape, self.dtype)
+            if view.size:
+                self.arr.get_basic_selection(
+                    sl, out=default_buffer_prototype().nd_buffer.from_numpy_array(view))
+            return view
         out = self.arr[sl]
         if self.is_dask:
             out = out.compute(scheduler="synchronous")
@@ -270,6 +287,23 @@ class _Source:
         if self.is_numpy or chunks is None or len(chunks) != 3:
             return None
         return tuple(int(c) for c in chunks)
+
+
+class Scratch:
+    """Named reusable buffers of one worker: ``get(key, shape, dtype)`` returns a C-contiguous
+    view of a flat buffer that grows when needed and is otherwise reused (its content is not
+    cleared)."""
+
+    def __init__(self):
+        self._bufs: dict[str, np.ndarray] = {}
+
+    def get(self, key: str, shape, dtype) -> np.ndarray:
+        dtype = np.dtype(dtype)
+        n = int(np.prod(shape, dtype=np.int64)) * dtype.itemsize
+        buf = self._bufs.get(key)
+        if buf is None or buf.size < n:
+            buf = self._bufs[key] = np.empty(max(n, 1), np.uint8)
+        return buf[:n].view(dtype).reshape(shape)
 
 
 def _depth(chunks, src: _Source) -> int:
