@@ -377,8 +377,7 @@ def label_clusters(labels, *, connectivity: int = 26, chunks=None, threads: int 
     dtype = np.int32 if nz * ny * nx < 2**31 - 1 else np.int64
     factory = out if callable(out) else None
     if factory is None:
-        out = _check_out(np.empty(src.shape, dtype) if out is None else out, src.shape,
-                         nz * ny * nx)
+        out = _check_out(np.empty(src.shape, dtype) if out is None else out, src.shape, 0)
         if chunks is None and not isinstance(out, np.ndarray):
             chunks = out.chunks[0]
     depth = _depth(chunks, src)
@@ -429,10 +428,9 @@ def label_clusters(labels, *, connectivity: int = 26, chunks=None, threads: int 
     lut = rank[roots]
     if factory is not None:
         out = _check_out(factory(ncomp), src.shape, ncomp)
+    else:
+        _check_out(out, src.shape, ncomp)
     odtype = np.dtype(out.dtype)
-    if ncomp > np.iinfo(odtype).max:
-        raise WetpathError(f"out dtype {odtype} is too small for {ncomp} clusters",
-                           step="clusters")
     in_memory = isinstance(out, np.ndarray)
 
     def second_pass(w, s):

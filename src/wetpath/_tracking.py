@@ -72,16 +72,20 @@ def _grow(keys, vals):
 @njit(cache=True, nogil=True)
 def _overlap_pass(a, b, keys, vals, used):
     """Count (a, b) label pairs over two equally shaped contiguous arrays (pairs (0, 0) skipped).
-    Runs of equal pairs are counted before touching the table; returns the (grown) table."""
+    Runs of equal pairs are counted before touching the table; returns the (grown) table and
+    whether an id outside 0..2³¹ − 1 was met (counting stops there)."""
     fa = a.ravel()
     fb = b.ravel()      # views when contiguous (whole y, x extent), else copies
     last = np.int64(-1)
     run = 0
+    limit = np.int64(1) << (_SHIFT - 1)
     for i in range(fa.size):
         x = np.int64(fa[i])
         y = np.int64(fb[i])
         if x == 0 and y == 0:
             continue
+        if x < 0 or y < 0 or x >= limit or y >= limit:
+            return keys, vals, used, True
         key = (x << _SHIFT) | y
         if key == last:
             run += 1
@@ -96,7 +100,7 @@ def _overlap_pass(a, b, keys, vals, used):
         used += _insert(keys, vals, last, run)
         if 2 * used > keys.size:
             keys, vals = _grow(keys, vals)
-    return keys, vals, used
+    return keys, vals, used, False
 
 
 def _shift3(shift) -> tuple[int, int, int]:
@@ -171,11 +175,10 @@ def overlap_table(clusters_a, clusters_b, *, shift=None, chunks=None,
         a = _window(sa, (z0, y0, lo[2]), (z1, y1, hi[2]), scratch[w], "a")
         b = _window(sb, (z0 + dz, y0 + dy, lo[2] + dx), (z1 + dz, y1 + dy, hi[2] + dx),
                     scratch[w], "b")
-        for x in (a, b):
-            if x.size and ((x.dtype.kind == "i" and x.min() < 0) or x.max() >= 2**31):
-                raise WetpathError("cluster ids must lie in 0..2³¹ − 1", step="track")
         t = tables[w]
-        t[0], t[1], t[2] = _overlap_pass(a, b, t[0], t[1], t[2])
+        t[0], t[1], t[2], bad = _overlap_pass(a, b, t[0], t[1], t[2])
+        if bad:
+            raise WetpathError("cluster ids must lie in 0..2³¹ − 1", step="track")
 
     run_parallel(iter(boxes), work, threads)
     keys = np.concatenate([t[0][t[0] != _EMPTY] for t in tables])
