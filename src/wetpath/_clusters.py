@@ -499,7 +499,7 @@ def _pair_table() -> tuple[np.ndarray, ...]:
 
 
 @njit(cache=True, nogil=True)
-def _cluster_cubes(codes, clus, nk, zbase, j0, j1, cube, single, e8, nmask, ps, pt, pc, pw,
+def _cluster_cubes(codes, clus, nk, zbase, j0, j1, cube, single, e8, ps, pt, pc, pw,
                    corners, acc, bbmin, bbmax):
     """Accumulate per-cluster sums over the cubes of one padded slab.
 
@@ -514,6 +514,7 @@ def _cluster_cubes(codes, clus, nk, zbase, j0, j1, cube, single, e8, nmask, ps, 
     bad = 0
     labs = np.zeros(8, np.int64)
     cods = np.zeros(8, np.int64)
+    full = e8[255]                     # 8·χ of a cube of n voxels only (no pairs, no excluded)
     for k in range(nk):
         for j in range(j0, j1):
             r0 = codes[k, j]
@@ -522,12 +523,18 @@ def _cluster_cubes(codes, clus, nk, zbase, j0, j1, cube, single, e8, nmask, ps, 
             r3 = codes[k + 1, j + 1]
             prev = (np.int64(r0[0]) | (np.int64(r1[0]) << 2) | (np.int64(r2[0]) << 4)
                     | (np.int64(r3[0]) << 6))
+            # n corners of the column, one bit per slot (computed, not looked up: a table
+            # indexed by every cube would not stay in cache)
+            prev3 = ((r0[0] == 3) | ((r1[0] == 3) << 1) | ((r2[0] == 3) << 2)
+                     | ((r3[0] == 3) << 3))
             for i in range(ni):
-                c = (np.int64(r0[i + 1]) | (np.int64(r1[i + 1]) << 2) | (np.int64(r2[i + 1]) << 4)
-                     | (np.int64(r3[i + 1]) << 6))
+                v0, v1, v2, v3 = r0[i + 1], r1[i + 1], r2[i + 1], r3[i + 1]
+                c3 = (v0 == 3) | ((v1 == 3) << 1) | ((v2 == 3) << 2) | ((v3 == 3) << 3)
+                m = prev3 | (c3 << 4)
+                prev3 = c3
+                c = np.int64(v0) | (np.int64(v1) << 2) | (np.int64(v2) << 4) | (np.int64(v3) << 6)
                 idx = prev | (c << 8)
                 prev = c
-                m = nmask[idx]
                 if m == 0:
                     continue
                 # far corner voxel: volume, centroid and box
@@ -548,6 +555,11 @@ def _cluster_cubes(codes, clus, nk, zbase, j0, j1, cube, single, e8, nmask, ps, 
                         bbmax[lab, 1] = max(bbmax[lab, 1], j)
                         bbmax[lab, 2] = max(bbmax[lab, 2], i)
                 if single:
+                    if m == 255:
+                        lab = clus[k, j, i]
+                        if lab > 0:
+                            acc[lab, 10] += full
+                        continue
                     s = 0
                     while not (m >> s) & 1:
                         s += 1
@@ -613,11 +625,15 @@ def _cluster_cubes(codes, clus, nk, zbase, j0, j1, cube, single, e8, nmask, ps, 
     return bad
 
 
-def _max_label(src: _Source, depth: int) -> int:
-    if src.is_numpy:
-        return int(src.arr.max()) if src.arr.size else 0
-    return max((int(src.read(a, a + depth).max()) for a in range(0, src.shape[0], depth)),
-               default=0)
+def _sums(size: int, old: tuple[np.ndarray, ...] | None = None) -> tuple[np.ndarray, ...]:
+    """Per-cluster sums, box minima and maxima for ids 0..size − 1, holding ``old``'s rows."""
+    big = np.iinfo(np.int64).max
+    new = (np.zeros((size, _ACC), np.int64), np.full((size, 3), big, np.int64),
+           np.full((size, 3), -1, np.int64))
+    if old is not None:
+        for a, b in zip(new, old, strict=True):
+            a[:b.shape[0]] = b
+    return new
 
 
 def cluster_lattice_measures(labels, cluster_labels, voxel_size: float = 1.0, *,
@@ -637,7 +653,7 @@ def cluster_lattice_measures(labels, cluster_labels, voxel_size: float = 1.0, *,
     connectivity : {26, 6}
         Adjacency used for each cluster's χ (the complement takes the other one).
     n : int, optional
-        Largest cluster id (saves one pass when known).
+        Largest cluster id, if known: larger ids are an error.
     chunks, threads
         Slab depth and worker threads as in :func:`wetpath._lattice.lattice_measures`.
 
@@ -665,19 +681,17 @@ def cluster_lattice_measures(labels, cluster_labels, voxel_size: float = 1.0, *,
         raise WetpathError(f"cluster_labels shape {csrc.shape} differs from labels shape "
                            f"{src.shape}", step="clusters")
     depth = _depth(chunks, src)
-    if n is None:
-        n = _max_label(csrc, depth)
     nw = resolve_threads(threads)
-    accs = [np.zeros((n + 1, _ACC), np.int64) for _ in range(nw)]
-    big = np.iinfo(np.int64).max
-    bbmins = [np.full((n + 1, 3), big, np.int64) for _ in range(nw)]
-    bbmaxs = [np.full((n + 1, 3), -1, np.int64) for _ in range(nw)]
+    # per-worker sums, grown by each worker to the largest id read so far (no extra pass)
+    size = 1 if n is None else n + 1
+    accs = [_sums(size) for _ in range(nw)]
     pairs = _lut("pairs")
     nmask = _lut("masks")[:, 3].astype(np.int64)
-    # compact per-configuration table (one cache line per row): nw ×3, ns ×3, 8·χ_n, excluded
+    # compact per-configuration table (8 bytes a row): nw ×3, ns ×3, 8·χ_n, excluded; all entries
+    # lie in −128..127 (×4 pair counts ≤ 24, 8·χ of 8 voxels ≤ 8 in magnitude)
     cube = np.ascontiguousarray(np.concatenate(
         [pairs[:, 0:3], pairs[:, 6:9], e8[nmask][:, None], (_lut("masks")[:, 0] > 0)[:, None]],
-        axis=1).astype(np.int16))
+        axis=1).astype(np.int8))
     ps, pt, pc, pw = _pair_table()
 
     nz, ny, nx = src.shape
@@ -691,8 +705,10 @@ def cluster_lattice_measures(labels, cluster_labels, voxel_size: float = 1.0, *,
     band = (csrc.chunk_shape() or (0, ny))[1]
     pending = [0, 0]
     cond = threading.Condition()
+    scratch = Scratch()
 
     def items():
+        top = 0
         for s, a in enumerate(range(0, nz + 1, depth)):
             b = min(a + depth, nz + 1)
             with cond:
@@ -709,25 +725,30 @@ def cluster_lattice_measures(labels, cluster_labels, voxel_size: float = 1.0, *,
             hi = min(b, nz)
             for y0 in range(0, ny, band) if a < hi else ():    # chunk rows: bounded memory
                 y1 = min(y0 + band, ny)
-                fresh = src.region((a, y0, 0), (hi, y1, nx))
+                fresh = src.region((a, y0, 0), (hi, y1, nx), scratch, "codes")
                 _check_codes(fresh)
                 codes[1:1 + hi - a, 1 + y0:1 + y1, 1:-1] = fresh
-                ids = csrc.region((a, y0, 0), (hi, y1, nx))
-                if ids.size and (ids.max() > n or (ids.dtype.kind == "i" and ids.min() < 0)):
-                    raise WetpathError(f"cluster ids must lie in 0..{n}", step="clusters")
+                ids = csrc.region((a, y0, 0), (hi, y1, nx), scratch, "ids")
+                top = max(top, int(ids.max()) if ids.size else 0)
+                if (n is not None and top > n) or (ids.dtype.kind == "i" and ids.size
+                                                   and ids.min() < 0):
+                    raise WetpathError("cluster ids must not be negative" if n is None else
+                                       f"cluster ids must lie in 0..{n}", step="clusters")
                 clus[1:1 + hi - a, 1 + y0:1 + y1, 1:-1] = ids
             if b > nz:
                 codes[1 + nz - a] = 0
                 clus[1 + nz - a] = 0
             for p in range(nw):
-                yield s % 2, a, b - a, cuts[p], cuts[p + 1]
+                yield s % 2, a, b - a, cuts[p], cuts[p + 1], top
 
     def work(w, item):
-        which, a, nk, j0, j1 = item
+        which, a, nk, j0, j1, top = item
         codes, clus = bufs[which]
+        if accs[w][0].shape[0] <= top:
+            accs[w] = _sums(max(top + 1, 2 * accs[w][0].shape[0]), accs[w])
         try:
-            bad = _cluster_cubes(codes, clus, nk, a, j0, j1, cube, connectivity == 26, e8, nmask,
-                                 ps, pt, pc, pw, CUBE_CORNERS, accs[w], bbmins[w], bbmaxs[w])
+            bad = _cluster_cubes(codes, clus, nk, a, j0, j1, cube, connectivity == 26, e8, ps, pt,
+                                 pc, pw, CUBE_CORNERS, *accs[w])
         finally:
             with cond:
                 pending[which] -= 1
@@ -737,10 +758,12 @@ def cluster_lattice_measures(labels, cluster_labels, voxel_size: float = 1.0, *,
                                step="clusters")
 
     run_parallel(items(), work, threads, max_pending=nw)
-    acc = np.sum(accs, axis=0)
-    acc[:, 11] = np.max([a[:, 11] for a in accs], axis=0)
-    bbmin = np.min(bbmins, axis=0)
-    bbmax = np.max(bbmaxs, axis=0)
+    size = max(a[0].shape[0] for a in accs)
+    accs = [_sums(size, a) for a in accs]
+    acc = np.sum([a[0] for a in accs], axis=0)
+    acc[:, 11] = np.max([a[0][:, 11] for a in accs], axis=0)
+    bbmin = np.min([a[1] for a in accs], axis=0)
+    bbmax = np.max([a[2] for a in accs], axis=0)
     ids = np.flatnonzero(acc[:, 0] > 0)
     a = acc[ids]
     vox = a[:, 0]
