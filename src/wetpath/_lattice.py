@@ -279,6 +279,14 @@ class _Source:
             out = out.compute(scheduler="synchronous")
         return np.ascontiguousarray(out)
 
+    def read_into(self, z0: int, z1: int, out: np.ndarray) -> None:
+        """Decode planes [z0, z1) (inside the array) of a zarr array into ``out`` (C-contiguous,
+        shape (z1 − z0, y, x), the array's dtype)."""
+        from zarr.core.buffer import default_buffer_prototype
+
+        self.arr.get_basic_selection(
+            (slice(z0, z1),), out=default_buffer_prototype().nd_buffer.from_numpy_array(out))
+
     def chunk_shape(self) -> tuple[int, int, int] | None:
         """Stored chunk shape of a zarr/dask array (None for numpy)."""
         if self.is_dask:
@@ -329,26 +337,49 @@ def _bad_codes(src: _Source):
 
 
 def iter_slabs(src: _Source, depth: int,
-               convert: Callable[[np.ndarray], np.ndarray] | None = None
+               convert: Callable[[np.ndarray], np.ndarray] | None = None, ring: int = 0
                ) -> Iterator[tuple[int, int, np.ndarray]]:
     """Stream an array as z-slabs of cubes with a one-plane halo.
 
     Yields ``(a, b, planes)`` for far-corner ranges [a, b) tiling [0, N + 1): ``planes`` holds voxel
     planes [a − 1, b) with virtual zero planes outside the array. Each stored chunk is read once:
-    the halo plane is carried over from the previous slab, not re-read.
+    the halo plane is carried over from the previous slab, not re-read. With ``ring`` > 0 the
+    slabs of a stored array are decoded into a ring of that many reused buffers: a slab stays
+    valid until ``ring`` − 1 more slabs have been produced (see :func:`run_parallel`).
     """
     nz = src.shape[0]
     conv = convert or (lambda p: p)
+    dtype = np.dtype(np.uint8) if convert else src.dtype
+    bufs = [np.empty((depth + 1,) + src.shape[1:], dtype) for _ in range(ring)] \
+        if ring and not src.is_numpy else []
     carry, carry_at = None, None
-    for a in range(0, nz + 1, depth):
+    for i, a in enumerate(range(0, nz + 1, depth)):
         b = min(a + depth, nz + 1)
         lo, hi = a - 1, b
         if src.is_numpy and lo >= 0 and hi <= nz:
             yield a, b, conv(src.read(lo, hi))
             continue
-        zero = np.zeros((1,) + src.shape[1:], np.uint8 if convert else src.dtype)
-        parts = [zero] if lo < 0 else []
         start = max(lo, 0)
+        if bufs:
+            planes = bufs[i % ring][:hi - lo]
+            if lo < 0:
+                planes[0] = 0
+            elif carry is not None and carry_at == lo:
+                planes[0] = carry
+                start = lo + 1
+            if start < min(hi, nz):
+                view = planes[start - lo:min(hi, nz) - lo]
+                if src.into and src.dtype == dtype:
+                    src.read_into(start, min(hi, nz), view)
+                else:
+                    view[...] = conv(src.read(start, min(hi, nz)))
+            if hi > nz:
+                planes[nz - lo] = 0
+            carry, carry_at = planes[-1], hi - 1
+            yield a, b, planes
+            continue
+        zero = np.zeros((1,) + src.shape[1:], dtype)
+        parts = [zero] if lo < 0 else []
         if carry is not None and carry_at == lo:
             parts.append(carry)
             start = lo + 1
@@ -445,7 +476,9 @@ def _histogram_pass(labels, *, chunks, threads, block):
             for i, zb in enumerate(bz):
                 blocks[zb] += _merge_xy(out[i], ysplit, xsplit, block, ny, nx, nby, nbx)
 
-    run_parallel(iter_slabs(src, depth, convert=lambda p: _as_codes(p, src)), work, threads)
+    # ring of reused slab buffers: at most ``nw`` slabs in flight besides the one being read
+    run_parallel(iter_slabs(src, depth, convert=lambda p: _as_codes(p, src), ring=nw + 2), work,
+                 threads)
     return src, np.sum(hist_total, axis=0), blocks
 
 
