@@ -1,11 +1,14 @@
 """Speed and peak memory of the streaming passes: lattice measures, cluster labelling, per-cluster
 measures and overlap tracking.
 
-Each (stage, size) runs in a fresh Python process so that its peak resident memory (ru_maxrss) is
-its own; inputs are generated once into a cache directory (``.npy`` for in-memory runs; for the
-out-of-core run a step store and a cluster store as the workflow writes them). Media: a 256³ random three-phase medium (``wetpath.synthetic.random_medium``,
-~35 % porosity, both fluids) mirror-tiled to the requested size; the second step for tracking has
-the same solid and fluid field at a lower wetting saturation (a drainage step).
+Each (stage, size) runs in a fresh Python process so that its peak resident memory is its own;
+inputs are generated once into a cache directory (``.npy`` for in-memory runs; for the out-of-core
+runs a step store and a cluster store as the workflow writes them: 128³ chunks, Blosc-Zstandard
+uint8 phase codes, Blosc-LZ4 uint16 cluster ids). Media: a 256³ random three-phase medium
+(``wetpath.synthetic.random_medium``, ~35 % porosity, both fluids) mirror-tiled to the requested
+size; the second step for tracking has the same solid and fluid field at a lower wetting
+saturation (a drainage step). The label stage out of core writes a cluster store as
+``label_step`` does.
 
 Usage::
 
