@@ -725,16 +725,21 @@ def cluster_lattice_measures(labels, cluster_labels, voxel_size: float = 1.0, *,
             hi = min(b, nz)
             for y0 in range(0, ny, band) if a < hi else ():    # chunk rows: bounded memory
                 y1 = min(y0 + band, ny)
-                fresh = src.region((a, y0, 0), (hi, y1, nx), scratch, "codes")
-                _check_codes(fresh)
-                codes[1:1 + hi - a, 1 + y0:1 + y1, 1:-1] = fresh
-                ids = csrc.region((a, y0, 0), (hi, y1, nx), scratch, "ids")
+                # decoded straight into the padded buffers (zarr) or copied
+                box = (a, y0, 0), (hi, y1, nx)
+                if src.dtype == np.uint8:
+                    fresh = src.read_into(*box, codes[1:1 + hi - a, 1 + y0:1 + y1, 1:-1])
+                    _check_codes(fresh)
+                else:
+                    fresh = src.region(*box, scratch, "codes")
+                    _check_codes(fresh)
+                    codes[1:1 + hi - a, 1 + y0:1 + y1, 1:-1] = fresh
+                ids = csrc.read_into(*box, clus[1:1 + hi - a, 1 + y0:1 + y1, 1:-1])
                 top = max(top, int(ids.max()) if ids.size else 0)
                 if (n is not None and top > n) or (ids.dtype.kind == "i" and ids.size
                                                    and ids.min() < 0):
                     raise WetpathError("cluster ids must not be negative" if n is None else
                                        f"cluster ids must lie in 0..{n}", step="clusters")
-                clus[1:1 + hi - a, 1 + y0:1 + y1, 1:-1] = ids
             if b > nz:
                 codes[1 + nz - a] = 0
                 clus[1 + nz - a] = 0

@@ -279,13 +279,19 @@ class _Source:
             out = out.compute(scheduler="synchronous")
         return np.ascontiguousarray(out)
 
-    def read_into(self, z0: int, z1: int, out: np.ndarray) -> None:
-        """Decode planes [z0, z1) (inside the array) of a zarr array into ``out`` (C-contiguous,
-        shape (z1 − z0, y, x), the array's dtype)."""
-        from zarr.core.buffer import default_buffer_prototype
+    def read_into(self, lo, hi, out: np.ndarray) -> np.ndarray:
+        """Fill ``out`` (any strides, the array's dtype) with the box [lo, hi) inside the array;
+        a zarr array decodes straight into it."""
+        if self.into:
+            from zarr.core.buffer import default_buffer_prototype
 
-        self.arr.get_basic_selection(
-            (slice(z0, z1),), out=default_buffer_prototype().nd_buffer.from_numpy_array(out))
+            sl = tuple(slice(a, b) for a, b in zip(lo, hi, strict=True))
+            if out.size:
+                self.arr.get_basic_selection(
+                    sl, out=default_buffer_prototype().nd_buffer.from_numpy_array(out))
+        else:
+            out[...] = self.region(lo, hi)
+        return out
 
     def chunk_shape(self) -> tuple[int, int, int] | None:
         """Stored chunk shape of a zarr/dask array (None for numpy)."""
@@ -370,7 +376,7 @@ def iter_slabs(src: _Source, depth: int,
             if start < min(hi, nz):
                 view = planes[start - lo:min(hi, nz) - lo]
                 if src.into and src.dtype == dtype:
-                    src.read_into(start, min(hi, nz), view)
+                    src.read_into((start, 0, 0), (min(hi, nz),) + src.shape[1:], view)
                 else:
                     view[...] = conv(src.read(start, min(hi, nz)))
             if hi > nz:

@@ -134,6 +134,7 @@ def create_cluster_array(group, shape, chunks, n: int):
     Stored in the smallest dtype that holds n (:func:`wetpath._clusters.cluster_dtype`: uint16 up
     to 65 535 clusters, else int32) and compressed with Blosc-LZ4 (bit shuffle): a 1024³ step's
     labels are written and read several times faster than as Zstandard-compressed int32.
+    All-zero chunks are stored too (a few hundred bytes each).
     Readers take whatever integer dtype the array has.
     """
     from zarr.codecs import BloscCodec
@@ -143,7 +144,10 @@ def create_cluster_array(group, shape, chunks, n: int):
     return group.create_array(
         "clusters", shape=tuple(int(v) for v in shape), chunks=tuple(int(c) for c in chunks),
         dtype=cluster_dtype(n), fill_value=0, dimension_names=("z", "y", "x"),
-        compressors=[BloscCodec(cname="lz4", clevel=5, shuffle="bitshuffle")])
+        compressors=[BloscCodec(cname="lz4", clevel=5, shuffle="bitshuffle")],
+        # every chunk is written: skipping empty ones costs a full comparison per chunk, more
+        # than the encoding itself
+        config={"write_empty_chunks": True})
 
 
 def downsample_mode(labels: np.ndarray) -> np.ndarray:
