@@ -177,8 +177,7 @@ def test_run_scan_equals_voxel_scan(medium, connectivity):
         0 if connectivity == 6 else 1)
     local, firsts = _compact(st.parent, st.first, n, 7)
     painted = np.empty(slab.shape, np.int64)
-    _paint_runs(painted.reshape(-1, slab.shape[2]), 0, st.starts, st.ends, st.rowptr, st.lab,
-                local)
+    _paint_runs(painted, 0, 0, slab.shape[1], st.starts, st.ends, st.rowptr, st.lab, local)
     assert np.array_equal(painted, local_ref[prov])
     assert np.array_equal(firsts, first_ref)
 
@@ -223,3 +222,18 @@ def test_cluster_store_uint16_readers(tmp_path, medium):
     assert cluster_lattice_measures(medium, stored).equals(cluster_lattice_measures(medium, ref))
     shifted = np.roll(ref, 3, axis=0)
     assert overlap_table(stored, shifted).equals(overlap_table(ref, shifted))
+
+
+@pytest.mark.parametrize("budget", [0, 3 * 2**20])
+def test_labels_with_runs_scanned_again(tmp_path, monkeypatch, medium, budget):
+    # beyond the run budget, slabs are read and scanned again in the second pass: same labels
+    zarr = pytest.importorskip("zarr")
+    from wetpath import _clusters
+
+    ref, n_ref = label_clusters(medium)
+    monkeypatch.setattr(_clusters, "RUN_BUDGET", budget)
+    out = zarr.create_array(tmp_path / "c.zarr", shape=medium.shape, chunks=(16, 35, 40),
+                            dtype="uint16")
+    for target in (None, out, np.zeros(medium.shape, np.int64)[:, ::-1]):
+        lab, n = label_clusters(medium, connectivity=26, chunks=16, threads=2, out=target)
+        assert n == n_ref and np.array_equal(lab[:], ref)

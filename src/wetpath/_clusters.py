@@ -45,6 +45,9 @@ from ._lattice import (
 
 __all__ = ["label_clusters", "cluster_dtype", "cluster_lattice_measures", "CLUSTER_COLUMNS"]
 
+# bytes of first-pass runs kept in memory for the second pass of label_clusters
+RUN_BUDGET = 512 * 2**20
+
 CLUSTER_COLUMNS = ["cluster", "voxels", "volume", "centroid_z", "centroid_y", "centroid_x",
                    "bbox_z0", "bbox_y0", "bbox_x0", "bbox_z1", "bbox_y1", "bbox_x1",
                    "area_nw", "area_ns", "euler_n", "touches_border"]
@@ -243,22 +246,24 @@ def _scan_runs(codes, starts, ends, rowptr, lab, parent, first, reach):
 
 
 @njit(cache=True, nogil=True)
-def _paint_runs(out, row0, starts, ends, rowptr, lab, table):
-    """Write ``table[lab[r]]`` over every run r of rows row0 … row0 + out rows − 1 (``out``: a
-    contiguous (rows, nx) array, zero elsewhere)."""
-    nrows, nx = out.shape
-    for i in range(nrows):
-        line = out[i]
-        x = 0
-        for r in range(rowptr[row0 + i], rowptr[row0 + i + 1]):
-            for u in range(x, starts[r]):
+def _paint_runs(out, z0, y0, ny, starts, ends, rowptr, lab, table):
+    """Write ``table[lab[r]]`` over every run r of a box of rows and zero elsewhere: ``out`` has
+    shape (planes, rows, nx) and element (k, i, x) is voxel x of row (z0 + k)·ny + y0 + i."""
+    nk, nrows, nx = out.shape
+    for k in range(nk):
+        for i in range(nrows):
+            line = out[k, i]
+            row = (z0 + k) * ny + y0 + i
+            x = 0
+            for r in range(rowptr[row], rowptr[row + 1]):
+                for u in range(x, starts[r]):
+                    line[u] = 0
+                v = table[lab[r]]
+                for u in range(starts[r], ends[r]):
+                    line[u] = v
+                x = ends[r]
+            for u in range(x, nx):
                 line[u] = 0
-            v = table[lab[r]]
-            for u in range(starts[r], ends[r]):
-                line[u] = v
-            x = ends[r]
-        for u in range(x, nx):
-            line[u] = 0
 
 
 @njit(cache=True, nogil=True)
@@ -388,6 +393,13 @@ def label_clusters(labels, *, connectivity: int = 26, chunks=None, threads: int 
     # per-worker buffers, reused across slabs (first touch of fresh memory is slow)
     nw = resolve_threads(threads)
     states = [_ScanState(depth * ny + 1) for _ in range(nw)]
+    # runs of the first pass kept for the second, up to RUN_BUDGET bytes (beyond it slabs are
+    # read and scanned again: memory stays bounded whatever the volume size)
+    kept: list[tuple[np.ndarray, ...] | None] = [None] * len(starts)
+    kept_bytes = [0]
+    lock = threading.Lock()
+    pos_dtype = np.uint16 if nx <= np.iinfo(np.uint16).max else np.int32
+    lab_dtype = np.int32 if depth * ny * nx < 2**31 - 1 else np.int64
 
     def scan(w: int, a: int) -> tuple[_ScanState, int]:
         """Runs and provisional labels of slab [a, a + depth); returns the worker state and the
@@ -404,10 +416,19 @@ def label_clusters(labels, *, connectivity: int = 26, chunks=None, threads: int 
         st, n = scan(w, a)
         t = min(a + depth, nz) - a
         local, first = _compact(st.parent, st.first, n, a * ny * nx)
-        faces = np.empty((2, ny, nx), np.int32)
-        _paint_runs(faces[0], 0, st.starts, st.ends, st.rowptr, st.lab, local)
-        _paint_runs(faces[1], (t - 1) * ny, st.starts, st.ends, st.rowptr, st.lab, local)
-        return local, first, faces[0], faces[1]
+        faces = np.empty((2, 1, ny, nx), np.int32)
+        runs = st.starts, st.ends, st.rowptr, st.lab
+        _paint_runs(faces[0], 0, 0, ny, *runs, local)
+        _paint_runs(faces[1], t - 1, 0, ny, *runs, local)
+        nr = int(st.rowptr[t * ny])
+        size = nr * (2 * np.dtype(pos_dtype).itemsize + np.dtype(lab_dtype).itemsize) + 8 * t * ny
+        with lock:
+            keep = kept_bytes[0] + size <= RUN_BUDGET
+            kept_bytes[0] += size if keep else 0
+        if keep:
+            kept[a // depth] = (st.starts[:nr].astype(pos_dtype), st.ends[:nr].astype(pos_dtype),
+                                st.rowptr[:t * ny + 1].copy(), st.lab[:nr].astype(lab_dtype))
+        return local, first, faces[0, 0], faces[1, 0]
 
     res = run_parallel(iter(starts), first_pass, threads)
     counts = np.array([r[1].size for r in res], np.int64)
@@ -435,23 +456,24 @@ def label_clusters(labels, *, connectivity: int = 26, chunks=None, threads: int 
 
     def second_pass(w, s):
         a = starts[s]
-        st, _ = scan(w, a)
         t = min(a + depth, nz) - a
+        runs, kept[s] = kept[s], None
+        if runs is None:
+            st, _ = scan(w, a)
+            runs = st.starts, st.ends, st.rowptr, st.lab
         local = res[s][0]
         table = np.where(local > 0, lut[np.where(local > 0, local + offsets[s], 0)], 0)
         table = table.astype(odtype)
         target = out[a:a + t] if in_memory else None
-        if target is None or not target.flags.c_contiguous:
-            target = st.scratch.get("out", (t, ny, nx), odtype)
-        _paint_runs(target.reshape(t * ny, nx), 0, st.starts, st.ends, st.rowptr, st.lab, table)
-        if in_memory:
-            if not np.may_share_memory(target, out):
-                out[a:a + t] = target
+        if target is not None and target.flags.c_contiguous:
+            _paint_runs(target, 0, 0, ny, *runs, table)
             return
-        # write chunk by chunk in y: bounded encoder memory
-        step = out.chunks[1]
+        # a band of chunk rows at a time (zarr: whole chunks, bounded encoder memory)
+        step = out.chunks[1] if not in_memory else ny
         for y0 in range(0, ny, step):
-            out[a:a + t, y0:y0 + step] = target[:, y0:y0 + step]
+            band = states[w].scratch.get("out", (t, min(step, ny - y0), nx), odtype)
+            _paint_runs(band, 0, y0, ny, *runs, table)
+            out[a:a + t, y0:y0 + band.shape[1]] = band
 
     run_parallel(iter(range(len(starts))), second_pass, threads)
     return out, int(ncomp)
