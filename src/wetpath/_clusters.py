@@ -537,28 +537,27 @@ def _cluster_cubes(codes, clus, nk, zbase, j0, j1, cube, single, e8, ps, pt, pc,
     labs = np.zeros(8, np.int64)
     cods = np.zeros(8, np.int64)
     full = e8[255]                     # 8·χ of a cube of n voxels only (no pairs, no excluded)
+    cm = np.zeros(ni + 1, np.uint8)
     for k in range(nk):
         for j in range(j0, j1):
             r0 = codes[k, j]
             r1 = codes[k, j + 1]
             r2 = codes[k + 1, j]
             r3 = codes[k + 1, j + 1]
-            prev = (np.int64(r0[0]) | (np.int64(r1[0]) << 2) | (np.int64(r2[0]) << 4)
-                    | (np.int64(r3[0]) << 6))
-            # n corners of the column, one bit per slot (computed, not looked up: a table
-            # indexed by every cube would not stay in cache)
-            prev3 = ((r0[0] == 3) | ((r1[0] == 3) << 1) | ((r2[0] == 3) << 2)
-                     | ((r3[0] == 3) << 3))
+            # n corners of every column of the row pair, one bit per slot (a simple loop the
+            # compiler vectorises); cubes without n corners are skipped before their
+            # configuration is built
+            for i in range(ni + 1):
+                cm[i] = ((r0[i] == 3) | ((r1[i] == 3) << 1) | ((r2[i] == 3) << 2)
+                         | ((r3[i] == 3) << 3))
             for i in range(ni):
-                v0, v1, v2, v3 = r0[i + 1], r1[i + 1], r2[i + 1], r3[i + 1]
-                c3 = (v0 == 3) | ((v1 == 3) << 1) | ((v2 == 3) << 2) | ((v3 == 3) << 3)
-                m = prev3 | (c3 << 4)
-                prev3 = c3
-                c = np.int64(v0) | (np.int64(v1) << 2) | (np.int64(v2) << 4) | (np.int64(v3) << 6)
-                idx = prev | (c << 8)
-                prev = c
+                m = np.int64(cm[i]) | (np.int64(cm[i + 1]) << 4)
                 if m == 0:
                     continue
+                idx = (np.int64(r0[i]) | (np.int64(r1[i]) << 2) | (np.int64(r2[i]) << 4)
+                       | (np.int64(r3[i]) << 6) | (np.int64(r0[i + 1]) << 8)
+                       | (np.int64(r1[i + 1]) << 10) | (np.int64(r2[i + 1]) << 12)
+                       | (np.int64(r3[i + 1]) << 14))
                 # far corner voxel: volume, centroid and box
                 if r3[i + 1] == 3:
                     lab = clus[k + 1, j + 1, i + 1]
