@@ -646,6 +646,24 @@ def _cluster_cubes(codes, clus, nk, zbase, j0, j1, cube, single, e8, ps, pt, pc,
     return bad
 
 
+@njit(cache=True, nogil=True)
+def _band_range(codes, ids):
+    """Largest code, smallest and largest id of two equally shaped 3-D views (0s when empty)."""
+    cmax = 0
+    imin = 0
+    imax = 0
+    nz, ny, nx = codes.shape
+    for z in range(nz):
+        for y in range(ny):
+            for x in range(nx):
+                c = np.int64(codes[z, y, x])
+                v = np.int64(ids[z, y, x])
+                cmax = max(cmax, c)
+                imin = min(imin, v)
+                imax = max(imax, v)
+    return cmax, imin, imax
+
+
 def _sums(size: int, old: tuple[np.ndarray, ...] | None = None) -> tuple[np.ndarray, ...]:
     """Per-cluster sums, box minima and maxima for ids 0..size − 1, holding ``old``'s rows."""
     big = np.iinfo(np.int64).max
@@ -750,15 +768,17 @@ def cluster_lattice_measures(labels, cluster_labels, voxel_size: float = 1.0, *,
                 box = (a, y0, 0), (hi, y1, nx)
                 if src.dtype == np.uint8:
                     fresh = src.read_into(*box, codes[1:1 + hi - a, 1 + y0:1 + y1, 1:-1])
-                    _check_codes(fresh)
                 else:
                     fresh = src.region(*box, scratch, "codes")
                     _check_codes(fresh)
                     codes[1:1 + hi - a, 1 + y0:1 + y1, 1:-1] = fresh
                 ids = csrc.read_into(*box, clus[1:1 + hi - a, 1 + y0:1 + y1, 1:-1])
-                top = max(top, int(ids.max()) if ids.size else 0)
-                if (n is not None and top > n) or (ids.dtype.kind == "i" and ids.size
-                                                   and ids.min() < 0):
+                # value checks of both bands in one compiled pass (no strided numpy reductions)
+                cmax, imin, imax = _band_range(codes[1:1 + hi - a, 1 + y0:1 + y1, 1:-1], ids)
+                if cmax > 3:
+                    _check_codes(fresh)
+                top = max(top, imax)
+                if (n is not None and top > n) or imin < 0:
                     raise WetpathError("cluster ids must not be negative" if n is None else
                                        f"cluster ids must lie in 0..{n}", step="clusters")
             if b > nz:
