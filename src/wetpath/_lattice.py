@@ -351,7 +351,8 @@ def iter_slabs(src: _Source, depth: int,
     planes [a − 1, b) with virtual zero planes outside the array. Each stored chunk is read once:
     the halo plane is carried over from the previous slab, not re-read. With ``ring`` > 0 the
     slabs of a stored array are decoded into a ring of that many reused buffers: a slab stays
-    valid until ``ring`` − 1 more slabs have been produced (see :func:`run_parallel`).
+    valid until ``ring`` − 1 more slabs have been produced, so ``threads`` + 1 suffice for
+    :func:`run_parallel` (at most ``threads`` items pending while the next one is produced).
     """
     nz = src.shape[0]
     conv = convert or (lambda p: p)
@@ -483,7 +484,7 @@ def _histogram_pass(labels, *, chunks, threads, block):
                 blocks[zb] += _merge_xy(out[i], ysplit, xsplit, block, ny, nx, nby, nbx)
 
     # ring of reused slab buffers: at most ``nw`` slabs in flight besides the one being read
-    run_parallel(iter_slabs(src, depth, convert=lambda p: _as_codes(p, src), ring=nw + 2), work,
+    run_parallel(iter_slabs(src, depth, convert=lambda p: _as_codes(p, src), ring=nw + 1), work,
                  threads)
     return src, np.sum(hist_total, axis=0), blocks
 
