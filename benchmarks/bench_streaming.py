@@ -1,11 +1,14 @@
 """Speed and peak memory of the streaming passes: lattice measures, cluster labelling, per-cluster
 measures and overlap tracking.
 
-Each (stage, size) runs in a fresh Python process so that its peak resident memory (ru_maxrss) is
-its own; inputs are generated once into a cache directory (``.npy`` for in-memory runs, zarr for the
-out-of-core run). Media: a 256³ random three-phase medium (``wetpath.synthetic.random_medium``,
-~35 % porosity, both fluids) mirror-tiled to the requested size; the second step for tracking has
-the same solid and fluid field at a lower wetting saturation (a drainage step).
+Each (stage, size) runs in a fresh Python process so that its peak resident memory is its own;
+inputs are generated once into a cache directory (``.npy`` for in-memory runs; for the out-of-core
+runs a step store and a cluster store as the workflow writes them: 128³ chunks, Blosc-Zstandard
+uint8 phase codes, Blosc-LZ4 uint16 cluster ids). Media: a 256³ random three-phase medium
+(``wetpath.synthetic.random_medium``, ~35 % porosity, both fluids) mirror-tiled to the requested
+size; the second step for tracking has the same solid and fluid field at a lower wetting
+saturation (a drainage step). The label stage out of core writes a cluster store as
+``label_step`` does.
 
 Usage::
 
@@ -47,49 +50,49 @@ def _base(size: int, saturation_w: float) -> np.ndarray:
     return synthetic.random_medium((m, m, m), porosity=0.35, saturation_w=saturation_w, seed=11)
 
 
-def make_inputs(size: int, cache: Path, as_zarr: bool) -> dict[str, Path]:
-    """Write steps a and b (phase codes) and their cluster labels; return their paths."""
+def _names(name: str, size: int, as_zarr: bool) -> tuple[str, str]:
+    """Cache file names of a step's phase codes and cluster labels."""
+    if as_zarr:
+        return f"step_{name}_{size}.zarr", f"clusters_{name}_{size}.zarr"
+    return f"{name}_{size}.npy", f"{name}_{size}_clusters.npy"
+
+
+def make_inputs(size: int, cache: Path, as_zarr: bool) -> None:
+    """Write steps a and b (phase codes) and their cluster labels into ``cache``.
+
+    Out of core they are what the workflow writes: a step store (``_store.create_step_store``,
+    128³ chunks, Blosc-Zstandard) and a cluster store (``_store.create_cluster_array``)."""
     from wetpath._clusters import label_clusters
 
-    paths = {}
     for name, sat in (("a", 0.55), ("b", 0.45)):
         base = _base(size, sat)
         idx = _reflect(size, base.shape[0])
+        codes, clusters = (cache / n for n in _names(name, size, as_zarr))
         if not as_zarr:
             vol = base[np.ix_(idx, idx, idx)]
-            p = cache / f"{name}_{size}.npy"
-            np.save(p, vol)
-            labels, _ = label_clusters(vol)
-            np.save(cache / f"{name}_{size}_clusters.npy", labels)
-        else:
-            import zarr
+            np.save(codes, vol)
+            np.save(clusters, label_clusters(vol)[0])
+            continue
+        import zarr
 
-            p = cache / f"{name}_{size}.zarr"
-            z = zarr.create_array(p, shape=(size,) * 3, chunks=(64, 256, 256), dtype="uint8",
-                                  overwrite=True)
-            for z0 in range(0, size, 64):
-                z[z0:z0 + 64] = base[np.ix_(idx[z0:z0 + 64], idx, idx)]
-            out = zarr.create_array(cache / f"{name}_{size}_clusters.zarr", shape=(size,) * 3,
-                                    chunks=(64, 256, 256), dtype="int32", overwrite=True,
-                                    compressors=_label_codec())
-            label_clusters(z, out=out)
-        paths[name] = p
-    return paths
+        from wetpath._store import create_cluster_array, create_step_store
 
-
-def _label_codec():
-    """Blosc lz4 with byte shuffle for int32 cluster labels: fast to write, compact."""
-    from zarr.codecs import BloscCodec
-
-    return BloscCodec(cname="lz4", clevel=5, shuffle="shuffle")
+        level0, _ = create_step_store(codes, (size,) * 3, 1.0)
+        depth = level0.chunks[0]
+        for z0 in range(0, size, depth):
+            level0[z0:z0 + depth] = base[np.ix_(idx[z0:z0 + depth], idx, idx)]
+        group = zarr.open_group(clusters, mode="w", zarr_format=3)
+        label_clusters(level0, out=lambda n, g=group, z=level0: create_cluster_array(
+            g, z.shape, z.chunks, n))
 
 
 def _open(path: Path):
     if path.suffix == ".npy":
         return np.load(path)
-    import zarr
+    from wetpath._stages import open_clusters
+    from wetpath._store import open_step
 
-    return zarr.open_array(path, mode="r")
+    return open_clusters(path) if path.name.startswith("clusters_") else open_step(path).labels
 
 
 def _rss_mb(key: str = "VmHWM") -> float:
@@ -110,10 +113,9 @@ def run_stage(stage: str, size: int, cache: Path, kind: str, threads: int, repea
     from wetpath._lattice import lattice_measures
     from wetpath._tracking import overlap_table
 
-    ext = ".npy" if kind == "numpy" else ".zarr"
-    a = _open(cache / f"a_{size}{ext}")
-    ca = _open(cache / f"a_{size}_clusters{ext}")
-    cb = _open(cache / f"b_{size}_clusters{ext}")
+    as_zarr = kind == "zarr"
+    a, ca = (_open(cache / n) for n in _names("a", size, as_zarr))
+    cb = _open(cache / _names("b", size, as_zarr)[1])
     tmp = Path(tempfile.mkdtemp(dir=cache))
 
     # in memory, the label stage writes into one output buffer reused across runs (as a workflow
@@ -125,11 +127,13 @@ def run_stage(stage: str, size: int, cache: Path, kind: str, threads: int, repea
             lattice_measures(a, threads=threads)
         elif stage == "label":
             out = reused if reused is not None and reused.shape == a.shape else None
-            if kind == "zarr":
+            if kind == "zarr":          # as label_step writes it
                 import zarr
 
-                out = zarr.create_array(tmp / "out.zarr", shape=a.shape, chunks=(64, 256, 256),
-                                        dtype="int32", overwrite=True, compressors=_label_codec())
+                from wetpath._store import create_cluster_array
+
+                group = zarr.open_group(tmp / "out.zarr", mode="w", zarr_format=3)
+                out = lambda n: create_cluster_array(group, a.shape, a.chunks, n)  # noqa: E731
             label_clusters(a, threads=threads, out=out)
         elif stage == "cluster_measures":
             cluster_lattice_measures(a, ca, threads=threads)
@@ -206,7 +210,7 @@ def main(argv=None) -> int:
     rows = []
     for size, kind in runs:
         t = time.perf_counter()
-        if not (cache / f"b_{size}_clusters{'.npy' if kind == 'numpy' else '.zarr'}").exists():
+        if not (cache / _names("b", size, kind == "zarr")[1]).exists():
             make_inputs(size, cache, kind == "zarr")
         print(f"# inputs {size}³ {kind}: {time.perf_counter() - t:.1f} s", flush=True)
         for stage in args.stages:

@@ -150,3 +150,90 @@ def test_cluster_ids_out_of_range():
     m = np.full((4, 4, 4), 3, np.uint8)
     with pytest.raises(WetpathError, match="cluster ids"):
         cluster_lattice_measures(m, np.full((4, 4, 4), 9, np.int32), n=2)
+
+
+@pytest.mark.parametrize("connectivity", [6, 26])
+def test_run_scan_equals_voxel_scan(medium, connectivity):
+    # oracle: the voxel-by-voxel raster scan (_scan_labels); both must give the same local ids
+    # (components numbered by first voxel in C order) and the same first voxels
+    from wetpath._clusters import (
+        _compact,
+        _neighbour_offsets,
+        _paint_runs,
+        _scan_labels,
+        _scan_runs,
+        _ScanState,
+    )
+
+    slab = np.ascontiguousarray(medium[10:50])
+    offs, right = _neighbour_offsets(connectivity)
+    prov = np.empty(slab.shape, np.int64)
+    n_ref, parent, first = _scan_labels(slab, prov, np.empty(4, np.int64), np.empty(4, np.int64),
+                                        offs, right)
+    local_ref, first_ref = _compact(parent, first, n_ref, 7)
+    st = _ScanState(slab.shape[0] * slab.shape[1] + 1)
+    n, _, st.starts, st.ends, st.lab, st.parent, st.first = _scan_runs(
+        slab, st.starts, st.ends, st.rowptr, st.lab, st.parent, st.first,
+        0 if connectivity == 6 else 1)
+    local, firsts = _compact(st.parent, st.first, n, 7)
+    painted = np.empty(slab.shape, np.int64)
+    _paint_runs(painted, 0, 0, slab.shape[1], st.starts, st.ends, st.rowptr, st.lab, local)
+    assert np.array_equal(painted, local_ref[prov])
+    assert np.array_equal(firsts, first_ref)
+
+
+def test_cluster_dtype_and_callable_out(tmp_path):
+    zarr = pytest.importorskip("zarr")
+    from wetpath._clusters import cluster_dtype
+    from wetpath._store import create_cluster_array
+
+    assert cluster_dtype(65535) == np.uint16 and cluster_dtype(65536) == np.int32
+    # isolated n voxels at even coordinates: 42³ = 74 088 clusters (no two are 26-adjacent)
+    m = np.full((84, 84, 84), 2, np.uint8)
+    m[::2, ::2, ::2] = 3
+    group = zarr.open_group(tmp_path / "c.zarr", mode="w")
+    seen = []
+
+    def create(n):
+        seen.append(n)
+        return create_cluster_array(group, m.shape, (32, 84, 84), n)
+
+    lab, n = label_clusters(m, out=create, threads=2)
+    assert seen == [42**3] and n == 42**3 and lab.dtype == np.int32
+    ref, _ = label_clusters(m)
+    assert np.array_equal(lab[:], ref)
+    with pytest.raises(WetpathError, match="too small"):
+        label_clusters(m, out=np.zeros(m.shape, np.uint16))
+
+
+def test_cluster_store_uint16_readers(tmp_path, medium):
+    # label_step writes uint16 ids; per-cluster measures and overlaps read from the store equal
+    # those of the in-memory int32 labels
+    from wetpath._ingest import ingest_volume
+    from wetpath._stages import label_step, open_clusters
+    from wetpath._tracking import overlap_table
+
+    np.save(tmp_path / "m.npy", medium)
+    step = ingest_volume(tmp_path / "m.npy", tmp_path / "s.zarr", voxel_size_um=2.0, chunks=32)
+    n = label_step(step, tmp_path / "c.zarr", threads=2)
+    stored = open_clusters(tmp_path / "c.zarr")
+    ref, n_ref = label_clusters(medium)
+    assert n == n_ref and stored.dtype == np.uint16 and np.array_equal(stored[:], ref)
+    assert cluster_lattice_measures(medium, stored).equals(cluster_lattice_measures(medium, ref))
+    shifted = np.roll(ref, 3, axis=0)
+    assert overlap_table(stored, shifted).equals(overlap_table(ref, shifted))
+
+
+@pytest.mark.parametrize("budget", [0, 3 * 2**20])
+def test_labels_with_runs_scanned_again(tmp_path, monkeypatch, medium, budget):
+    # beyond the run budget, slabs are read and scanned again in the second pass: same labels
+    zarr = pytest.importorskip("zarr")
+    from wetpath import _clusters
+
+    ref, n_ref = label_clusters(medium)
+    monkeypatch.setattr(_clusters, "RUN_BUDGET", budget)
+    out = zarr.create_array(tmp_path / "c.zarr", shape=medium.shape, chunks=(16, 35, 40),
+                            dtype="uint16")
+    for target in (None, out, np.zeros(medium.shape, np.int64)[:, ::-1]):
+        lab, n = label_clusters(medium, connectivity=26, chunks=16, threads=2, out=target)
+        assert n == n_ref and np.array_equal(lab[:], ref)

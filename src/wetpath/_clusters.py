@@ -32,6 +32,7 @@ from scipy import ndimage
 from ._errors import WetpathError
 from ._lattice import (
     CUBE_CORNERS,
+    Scratch,
     _check_voxel_size,
     _class_factors,
     _depth,
@@ -42,7 +43,10 @@ from ._lattice import (
     run_parallel,
 )
 
-__all__ = ["label_clusters", "cluster_lattice_measures", "CLUSTER_COLUMNS"]
+__all__ = ["label_clusters", "cluster_dtype", "cluster_lattice_measures", "CLUSTER_COLUMNS"]
+
+# bytes of first-pass runs kept in memory for the second pass of label_clusters
+RUN_BUDGET = 512 * 2**20
 
 CLUSTER_COLUMNS = ["cluster", "voxels", "volume", "centroid_z", "centroid_y", "centroid_x",
                    "bbox_z0", "bbox_y0", "bbox_x0", "bbox_z1", "bbox_y1", "bbox_x1",
@@ -69,7 +73,8 @@ def _find(parent, i):
 
 @njit(cache=True, nogil=True)
 def _scan_labels(codes, out, parent, first, offs, right):
-    """Raster-scan union–find labelling of code 3 in a contiguous slab.
+    """Raster-scan union–find labelling of code 3 in a contiguous slab, voxel by voxel (the
+    reference for :func:`_scan_runs`).
 
     ``out`` receives provisional labels; ``parent`` the union–find forest in which every root is
     the smallest provisional label of its component (created first, so at the component's first
@@ -135,6 +140,133 @@ def _scan_labels(codes, out, parent, first, offs, right):
 
 
 @njit(cache=True, nogil=True)
+def _row_runs(line, starts, ends, lab, nr):
+    """Append the runs of code 3 of one row; returns the new run count (capacity checked by the
+    caller: a row holds at most (nx + 1) // 2 runs)."""
+    nx = line.size
+    x = 0
+    while x < nx:
+        if line[x] != 3:
+            x += 1
+            continue
+        x0 = x
+        while x < nx and line[x] == 3:
+            x += 1
+        starts[nr] = x0
+        ends[nr] = x
+        lab[nr] = 0
+        nr += 1
+    return nr
+
+
+@njit(cache=True, nogil=True)
+def _unite_rows(r0, r1, p, p1, starts, ends, lab, parent, reach):
+    """Unite runs r0 … r1 − 1 of a row with the runs p … p1 − 1 of a preceding row they touch."""
+    for r in range(r0, r1):
+        s0, s1 = starts[r], ends[r]
+        while p < p1 and ends[p] + reach <= s0:
+            p += 1
+        k = p
+        while k < p1 and starts[k] < s1 + reach:
+            rv = _find(parent, lab[k])
+            cur = lab[r]
+            if cur == 0:
+                lab[r] = rv
+            else:
+                rc = _find(parent, cur)
+                if rv < rc:
+                    parent[rc] = rv
+                    lab[r] = rv
+                elif rc < rv:
+                    parent[rv] = rc
+            k += 1
+
+
+@njit(cache=True, nogil=True)
+def _new_labels(r0, r1, row, nx, starts, lab, parent, first, n):
+    """A new label for every run of r0 … r1 − 1 that touches no earlier run; returns n."""
+    for r in range(r0, r1):
+        if lab[r] == 0:
+            n += 1
+            parent[n] = n
+            first[n] = row * nx + starts[r]
+            lab[r] = n
+    return n
+
+
+@njit(cache=True, nogil=True)
+def _grown(arr, need):
+    """``arr`` itself when it holds ``need`` elements, else a copy at least twice as long."""
+    if need <= arr.size:
+        return arr
+    bigger = np.empty(max(2 * arr.size, need), arr.dtype)
+    bigger[:arr.size] = arr
+    return bigger
+
+
+@njit(cache=True, nogil=True)
+def _scan_runs(codes, starts, ends, rowptr, lab, parent, first, reach):
+    """Raster-scan union–find labelling of code 3 in a contiguous slab, run by run.
+
+    Each row's runs of code 3 along x are found first (run r spans x ∈ [starts[r], ends[r]) of row
+    (z, y), runs ``rowptr[z·ny + y]`` … ``rowptr[z·ny + y + 1] − 1``); a run is then united with
+    the runs it touches in the preceding rows (z, y − 1) and, with ``reach`` = 1
+    (26-connectivity), (z − 1, y − 1 … y + 1), or only (z − 1, y) with ``reach`` = 0
+    (6-connectivity). A run that touches none gets a new provisional label, so labels are created
+    in C order at the first voxel of their run and — as in :func:`_scan_labels` — the root of
+    every set is its smallest label, created at the component's first voxel in C order;
+    ``first[l]`` is that voxel's C-order index in the slab. ``lab[r]`` is a label of run r's set.
+    Arrays grow when full; returns (n labels, runs, starts, ends, lab, parent, first).
+    """
+    nz, ny, nx = codes.shape
+    nr = 0
+    n = 0
+    for z in range(nz):
+        for y in range(ny):
+            row = z * ny + y
+            rowptr[row] = nr
+            need = nr + (nx + 1) // 2 + 1
+            starts, ends, lab = _grown(starts, need), _grown(ends, need), _grown(lab, need)
+            nr = _row_runs(codes[z, y], starts, ends, lab, nr)
+            r0, r1 = rowptr[row], nr
+            if r0 == r1:
+                continue
+            if y > 0:                            # (z, y − 1)
+                _unite_rows(r0, r1, rowptr[row - 1], r0, starts, ends, lab, parent, reach)
+            if z > 0:                            # (z − 1, y + dy)
+                for yy in range(max(y - reach, 0), min(y + reach + 1, ny)):
+                    nbr = (z - 1) * ny + yy
+                    _unite_rows(r0, r1, rowptr[nbr], rowptr[nbr + 1], starts, ends, lab, parent,
+                                reach)
+            need = n + (r1 - r0) + 1
+            parent, first = _grown(parent, need), _grown(first, need)
+            n = _new_labels(r0, r1, row, nx, starts, lab, parent, first, n)
+    rowptr[nz * ny] = nr
+    return n, nr, starts, ends, lab, parent, first
+
+
+@njit(cache=True, nogil=True)
+def _paint_runs(out, z0, y0, ny, starts, ends, rowptr, lab, table):
+    """Write ``table[lab[r]]`` over every run r of a box of rows and zero elsewhere: ``out`` has
+    shape (planes, rows, nx) and element (k, i, x) is voxel x of row (z0 + k)·ny + y0 + i."""
+    nk, nrows, nx = out.shape
+    for k in range(nk):
+        for i in range(nrows):
+            line = out[k, i]
+            row = (z0 + k) * ny + y0 + i
+            x = 0
+            for r in range(rowptr[row], rowptr[row + 1]):
+                for u in range(x, starts[r]):
+                    line[u] = 0
+                v = table[lab[r]]
+                for u in range(starts[r], ends[r]):
+                    line[u] = v
+                x = ends[r]
+            for u in range(x, nx):
+                line[u] = 0
+
+
+@njit(cache=True, nogil=True)
 def _compact(parent, first, n, base):
     """Provisional label -> local id 1..m in order of first voxel; first voxel (global C index)
     of each local id."""
@@ -158,16 +290,6 @@ def _roots(parent):
     for i in range(parent.size):
         out[i] = _find(parent, i)
     return out
-
-
-@njit(cache=True, nogil=True)
-def _remap(labels, table):
-    """In place: label l > 0 becomes table[l]."""
-    flat = labels.ravel()
-    for i in range(flat.size):
-        lab = flat[i]
-        if lab > 0:
-            flat[i] = table[lab]
 
 
 def _neighbour_offsets(connectivity: int) -> tuple[np.ndarray, np.ndarray]:
@@ -214,6 +336,14 @@ def _unite_faces(lower, upper, off_lower, off_upper, parent, firsts, reach):
                             parent[ra] = rb
 
 
+def cluster_dtype(n: int) -> np.dtype:
+    """Smallest integer dtype that holds cluster ids 0..n: uint16 up to 65 535, else int32, else
+    int64 (the cluster store is written in it: 2 bytes per voxel instead of 4 for most steps)."""
+    if n <= np.iinfo(np.uint16).max:
+        return np.dtype(np.uint16)
+    return np.dtype(np.int32 if n <= np.iinfo(np.int32).max else np.int64)
+
+
 def label_clusters(labels, *, connectivity: int = 26, chunks=None, threads: int | None = None,
                    out=None) -> tuple[np.ndarray, int]:
     """Label the connected components of the non-wetting phase, slab by slab.
@@ -229,15 +359,17 @@ def label_clusters(labels, *, connectivity: int = 26, chunks=None, threads: int 
         else 64. The result does not depend on it.
     threads : int, optional
         Worker threads (None: all cores).
-    out : ndarray or zarr array, optional
+    out : ndarray, zarr array or callable, optional
         Integer array of the same shape to write into; a zarr array keeps the labels out of core
-        (each slab is then labelled twice instead of held in memory).
+        (each slab is then scanned twice instead of held in memory). A callable ``out(n)`` is
+        called once the number of clusters ``n`` is known (after the first pass) and returns the
+        array to write into, e.g. a zarr array of :func:`cluster_dtype` ``(n)``.
 
     Returns
     -------
     cluster_labels : ndarray or zarr array of int32 (int64 above 2³¹ − 1 voxels)
         0 where not non-wetting, else the cluster id; ids 1..n in the order of each cluster's first
-        voxel in C order.
+        voxel in C order. The dtype of ``out`` when given.
     n : int
         Number of clusters.
 
@@ -248,49 +380,55 @@ def label_clusters(labels, *, connectivity: int = 26, chunks=None, threads: int 
     src = _Source(labels, step="clusters")
     nz, ny, nx = src.shape
     dtype = np.int32 if nz * ny * nx < 2**31 - 1 else np.int64
-    in_memory = out is None or isinstance(out, np.ndarray)
-    if out is None:
-        out = np.empty(src.shape, dtype)
-    if tuple(out.shape) != src.shape or np.dtype(out.dtype).kind not in "iu":
-        raise WetpathError(f"out must be an integer array of shape {src.shape}, got "
-                           f"{tuple(out.shape)} {out.dtype}", step="clusters")
-    if np.dtype(out.dtype).itemsize < np.dtype(dtype).itemsize:
-        raise WetpathError(f"out dtype {out.dtype} is too small for {nz * ny * nx} voxels",
-                           step="clusters")
-    if chunks is None and not in_memory:
-        chunks = out.chunks[0]
+    factory = out if callable(out) else None
+    if factory is None:
+        out = _check_out(np.empty(src.shape, dtype) if out is None else out, src.shape, 0)
+        if chunks is None and not isinstance(out, np.ndarray):
+            chunks = out.chunks[0]
     depth = _depth(chunks, src)
     starts = list(range(0, nz, depth))
+    reach = 0 if connectivity == 6 else 1
+    _structure(connectivity)
 
-    offs, right = _neighbour_offsets(connectivity)
     # per-worker buffers, reused across slabs (first touch of fresh memory is slow)
     nw = resolve_threads(threads)
-    locals_: list[np.ndarray | None] = [None] * nw
-    forests = [[np.empty(1 << 16, np.int64), np.empty(1 << 16, np.int64)] for _ in range(nw)]
+    states = [_ScanState(depth * ny + 1) for _ in range(nw)]
+    # runs of the first pass kept for the second, up to RUN_BUDGET bytes (beyond it slabs are
+    # read and scanned again: memory stays bounded whatever the volume size)
+    kept: list[tuple[np.ndarray, ...] | None] = [None] * len(starts)
+    kept_bytes = [0]
+    lock = threading.Lock()
+    pos_dtype = np.uint16 if nx <= np.iinfo(np.uint16).max else np.int32
+    lab_dtype = np.int32 if depth * ny * nx < 2**31 - 1 else np.int64
 
-    def label_slab(w: int, a: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """Provisional labels of slab [a, a + depth) (in ``out`` when in memory), the map
-        provisional -> local id and the first voxel of each local id."""
-        planes = src.read(a, min(a + depth, nz))
-        t = planes.shape[0]
+    def scan(w: int, a: int) -> tuple[_ScanState, int]:
+        """Runs and provisional labels of slab [a, a + depth); returns the worker state and the
+        number of provisional labels."""
+        st = states[w]
+        planes = src.region((a, 0, 0), (min(a + depth, nz), ny, nx), st.scratch, "codes")
         _check_codes(planes)
-        planes = planes.astype(np.uint8, copy=False)
-        target = out[a:a + t] if in_memory else None
-        if target is None or not target.flags.c_contiguous:
-            if locals_[w] is None:
-                locals_[w] = np.empty((depth, ny, nx), dtype)
-            target = locals_[w][:t]
-        n, forests[w][0], forests[w][1] = _scan_labels(planes, target, forests[w][0],
-                                                       forests[w][1], offs, right)
-        if in_memory and not np.may_share_memory(target, out):
-            out[a:a + t] = target
-        local, first = _compact(forests[w][0], forests[w][1], n, a * ny * nx)
-        return target, local, first
+        n, _, st.starts, st.ends, st.lab, st.parent, st.first = _scan_runs(
+            planes.astype(np.uint8, copy=False), st.starts, st.ends, st.rowptr, st.lab,
+            st.parent, st.first, reach)
+        return st, n
 
     def first_pass(w, a):
-        prov, local, first = label_slab(w, a)
-        faces = local.astype(np.int32)[prov[0]], local.astype(np.int32)[prov[-1]]
-        return local, first, *faces
+        st, n = scan(w, a)
+        t = min(a + depth, nz) - a
+        local, first = _compact(st.parent, st.first, n, a * ny * nx)
+        faces = np.empty((2, 1, ny, nx), np.int32)
+        runs = st.starts, st.ends, st.rowptr, st.lab
+        _paint_runs(faces[0], 0, 0, ny, *runs, local)
+        _paint_runs(faces[1], t - 1, 0, ny, *runs, local)
+        nr = int(st.rowptr[t * ny])
+        size = nr * (2 * np.dtype(pos_dtype).itemsize + np.dtype(lab_dtype).itemsize) + 8 * t * ny
+        with lock:
+            keep = kept_bytes[0] + size <= RUN_BUDGET
+            kept_bytes[0] += size if keep else 0
+        if keep:
+            kept[a // depth] = (st.starts[:nr].astype(pos_dtype), st.ends[:nr].astype(pos_dtype),
+                                st.rowptr[:t * ny + 1].copy(), st.lab[:nr].astype(lab_dtype))
+        return local, first, faces[0, 0], faces[1, 0]
 
     res = run_parallel(iter(starts), first_pass, threads)
     counts = np.array([r[1].size for r in res], np.int64)
@@ -308,30 +446,61 @@ def label_clusters(labels, *, connectivity: int = 26, chunks=None, threads: int 
     rank = np.zeros(total + 1, np.int64)     # roots ordered by first voxel: final ids 1..n
     root_ids = np.flatnonzero(is_root) + 1
     rank[root_ids[np.argsort(firsts[root_ids], kind="stable")]] = np.arange(1, ncomp + 1)
-    lut = rank[roots].astype(dtype)
+    lut = rank[roots]
+    if factory is not None:
+        out = _check_out(factory(ncomp), src.shape, ncomp)
+    else:
+        _check_out(out, src.shape, ncomp)
+    odtype = np.dtype(out.dtype)
+    in_memory = isinstance(out, np.ndarray)
 
     def second_pass(w, s):
         a = starts[s]
+        t = min(a + depth, nz) - a
+        runs, kept[s] = kept[s], None
+        if runs is None:
+            st, _ = scan(w, a)
+            runs = st.starts, st.ends, st.rowptr, st.lab
         local = res[s][0]
         table = np.where(local > 0, lut[np.where(local > 0, local + offsets[s], 0)], 0)
-        if in_memory:
-            view = out[a:a + depth]
-            if view.flags.c_contiguous:
-                _remap(view, table.astype(view.dtype))
-            else:
-                prov = np.ascontiguousarray(view)
-                _remap(prov, table.astype(prov.dtype))
-                out[a:a + depth] = prov
-        else:
-            prov, _, _ = label_slab(w, a)
-            _remap(prov, table.astype(prov.dtype))
-            # write chunk by chunk in y: bounded encoder memory
-            step = out.chunks[1]
-            for y0 in range(0, ny, step):
-                out[a:a + prov.shape[0], y0:y0 + step] = prov[:, y0:y0 + step]
+        table = table.astype(odtype)
+        target = out[a:a + t] if in_memory else None
+        if target is not None and target.flags.c_contiguous:
+            _paint_runs(target, 0, 0, ny, *runs, table)
+            return
+        # a band of chunk rows at a time (zarr: whole chunks, bounded encoder memory)
+        step = out.chunks[1] if not in_memory else ny
+        for y0 in range(0, ny, step):
+            band = states[w].scratch.get("out", (t, min(step, ny - y0), nx), odtype)
+            _paint_runs(band, 0, y0, ny, *runs, table)
+            out[a:a + t, y0:y0 + band.shape[1]] = band
 
     run_parallel(iter(range(len(starts))), second_pass, threads)
     return out, int(ncomp)
+
+
+class _ScanState:
+    """Reused buffers of one labelling worker: runs, union–find forest, slab reads."""
+
+    def __init__(self, rows: int):
+        self.starts = np.empty(1 << 16, np.int32)
+        self.ends = np.empty(1 << 16, np.int32)
+        self.lab = np.empty(1 << 16, np.int64)
+        self.parent = np.empty(1 << 16, np.int64)
+        self.first = np.empty(1 << 16, np.int64)
+        self.rowptr = np.empty(rows, np.int64)
+        self.scratch = Scratch()
+
+
+def _check_out(out, shape: tuple[int, ...], largest: int):
+    """``out`` must be an integer array of ``shape`` whose dtype holds ids up to ``largest``."""
+    if tuple(out.shape) != shape or np.dtype(out.dtype).kind not in "iu":
+        raise WetpathError(f"out must be an integer array of shape {shape}, got "
+                           f"{tuple(out.shape)} {out.dtype}", step="clusters")
+    if largest > np.iinfo(np.dtype(out.dtype)).max:
+        raise WetpathError(f"out dtype {out.dtype} is too small for {largest} clusters",
+                           step="clusters")
+    return out
 
 
 # ----------------------------------------------------------------------------- per-cluster measures
@@ -352,7 +521,7 @@ def _pair_table() -> tuple[np.ndarray, ...]:
 
 
 @njit(cache=True, nogil=True)
-def _cluster_cubes(codes, clus, nk, zbase, j0, j1, cube, single, e8, nmask, ps, pt, pc, pw,
+def _cluster_cubes(codes, clus, nk, zbase, j0, j1, cube, single, e8, ps, pt, pc, pw,
                    corners, acc, bbmin, bbmax):
     """Accumulate per-cluster sums over the cubes of one padded slab.
 
@@ -367,22 +536,28 @@ def _cluster_cubes(codes, clus, nk, zbase, j0, j1, cube, single, e8, nmask, ps, 
     bad = 0
     labs = np.zeros(8, np.int64)
     cods = np.zeros(8, np.int64)
+    full = e8[255]                     # 8·χ of a cube of n voxels only (no pairs, no excluded)
+    cm = np.zeros(ni + 1, np.uint8)
     for k in range(nk):
         for j in range(j0, j1):
             r0 = codes[k, j]
             r1 = codes[k, j + 1]
             r2 = codes[k + 1, j]
             r3 = codes[k + 1, j + 1]
-            prev = (np.int64(r0[0]) | (np.int64(r1[0]) << 2) | (np.int64(r2[0]) << 4)
-                    | (np.int64(r3[0]) << 6))
+            # n corners of every column of the row pair, one bit per slot (a simple loop the
+            # compiler vectorises); cubes without n corners are skipped before their
+            # configuration is built
+            for i in range(ni + 1):
+                cm[i] = ((r0[i] == 3) | ((r1[i] == 3) << 1) | ((r2[i] == 3) << 2)
+                         | ((r3[i] == 3) << 3))
             for i in range(ni):
-                c = (np.int64(r0[i + 1]) | (np.int64(r1[i + 1]) << 2) | (np.int64(r2[i + 1]) << 4)
-                     | (np.int64(r3[i + 1]) << 6))
-                idx = prev | (c << 8)
-                prev = c
-                m = nmask[idx]
+                m = np.int64(cm[i]) | (np.int64(cm[i + 1]) << 4)
                 if m == 0:
                     continue
+                idx = (np.int64(r0[i]) | (np.int64(r1[i]) << 2) | (np.int64(r2[i]) << 4)
+                       | (np.int64(r3[i]) << 6) | (np.int64(r0[i + 1]) << 8)
+                       | (np.int64(r1[i + 1]) << 10) | (np.int64(r2[i + 1]) << 12)
+                       | (np.int64(r3[i + 1]) << 14))
                 # far corner voxel: volume, centroid and box
                 if r3[i + 1] == 3:
                     lab = clus[k + 1, j + 1, i + 1]
@@ -401,6 +576,11 @@ def _cluster_cubes(codes, clus, nk, zbase, j0, j1, cube, single, e8, nmask, ps, 
                         bbmax[lab, 1] = max(bbmax[lab, 1], j)
                         bbmax[lab, 2] = max(bbmax[lab, 2], i)
                 if single:
+                    if m == 255:
+                        lab = clus[k, j, i]
+                        if lab > 0:
+                            acc[lab, 10] += full
+                        continue
                     s = 0
                     while not (m >> s) & 1:
                         s += 1
@@ -466,11 +646,33 @@ def _cluster_cubes(codes, clus, nk, zbase, j0, j1, cube, single, e8, nmask, ps, 
     return bad
 
 
-def _max_label(src: _Source, depth: int) -> int:
-    if src.is_numpy:
-        return int(src.arr.max()) if src.arr.size else 0
-    return max((int(src.read(a, a + depth).max()) for a in range(0, src.shape[0], depth)),
-               default=0)
+@njit(cache=True, nogil=True)
+def _band_range(codes, ids):
+    """Largest code, smallest and largest id of two equally shaped 3-D views (0s when empty)."""
+    cmax = 0
+    imin = 0
+    imax = 0
+    nz, ny, nx = codes.shape
+    for z in range(nz):
+        for y in range(ny):
+            for x in range(nx):
+                c = np.int64(codes[z, y, x])
+                v = np.int64(ids[z, y, x])
+                cmax = max(cmax, c)
+                imin = min(imin, v)
+                imax = max(imax, v)
+    return cmax, imin, imax
+
+
+def _sums(size: int, old: tuple[np.ndarray, ...] | None = None) -> tuple[np.ndarray, ...]:
+    """Per-cluster sums, box minima and maxima for ids 0..size − 1, holding ``old``'s rows."""
+    big = np.iinfo(np.int64).max
+    new = (np.zeros((size, _ACC), np.int64), np.full((size, 3), big, np.int64),
+           np.full((size, 3), -1, np.int64))
+    if old is not None:
+        for a, b in zip(new, old, strict=True):
+            a[:b.shape[0]] = b
+    return new
 
 
 def cluster_lattice_measures(labels, cluster_labels, voxel_size: float = 1.0, *,
@@ -490,7 +692,7 @@ def cluster_lattice_measures(labels, cluster_labels, voxel_size: float = 1.0, *,
     connectivity : {26, 6}
         Adjacency used for each cluster's χ (the complement takes the other one).
     n : int, optional
-        Largest cluster id (saves one pass when known).
+        Largest cluster id, if known: larger ids are an error.
     chunks, threads
         Slab depth and worker threads as in :func:`wetpath._lattice.lattice_measures`.
 
@@ -518,19 +720,17 @@ def cluster_lattice_measures(labels, cluster_labels, voxel_size: float = 1.0, *,
         raise WetpathError(f"cluster_labels shape {csrc.shape} differs from labels shape "
                            f"{src.shape}", step="clusters")
     depth = _depth(chunks, src)
-    if n is None:
-        n = _max_label(csrc, depth)
     nw = resolve_threads(threads)
-    accs = [np.zeros((n + 1, _ACC), np.int64) for _ in range(nw)]
-    big = np.iinfo(np.int64).max
-    bbmins = [np.full((n + 1, 3), big, np.int64) for _ in range(nw)]
-    bbmaxs = [np.full((n + 1, 3), -1, np.int64) for _ in range(nw)]
+    # per-worker sums, grown by each worker to the largest id read so far (no extra pass)
+    size = 1 if n is None else n + 1
+    accs = [_sums(size) for _ in range(nw)]
     pairs = _lut("pairs")
     nmask = _lut("masks")[:, 3].astype(np.int64)
-    # compact per-configuration table (one cache line per row): nw ×3, ns ×3, 8·χ_n, excluded
+    # compact per-configuration table (8 bytes a row): nw ×3, ns ×3, 8·χ_n, excluded; all entries
+    # lie in −128..127 (×4 pair counts ≤ 24, 8·χ of 8 voxels ≤ 8 in magnitude)
     cube = np.ascontiguousarray(np.concatenate(
         [pairs[:, 0:3], pairs[:, 6:9], e8[nmask][:, None], (_lut("masks")[:, 0] > 0)[:, None]],
-        axis=1).astype(np.int16))
+        axis=1).astype(np.int8))
     ps, pt, pc, pw = _pair_table()
 
     nz, ny, nx = src.shape
@@ -544,8 +744,10 @@ def cluster_lattice_measures(labels, cluster_labels, voxel_size: float = 1.0, *,
     band = (csrc.chunk_shape() or (0, ny))[1]
     pending = [0, 0]
     cond = threading.Condition()
+    scratch = Scratch()
 
     def items():
+        top = 0
         for s, a in enumerate(range(0, nz + 1, depth)):
             b = min(a + depth, nz + 1)
             with cond:
@@ -562,25 +764,37 @@ def cluster_lattice_measures(labels, cluster_labels, voxel_size: float = 1.0, *,
             hi = min(b, nz)
             for y0 in range(0, ny, band) if a < hi else ():    # chunk rows: bounded memory
                 y1 = min(y0 + band, ny)
-                fresh = src.region((a, y0, 0), (hi, y1, nx))
-                _check_codes(fresh)
-                codes[1:1 + hi - a, 1 + y0:1 + y1, 1:-1] = fresh
-                ids = csrc.region((a, y0, 0), (hi, y1, nx))
-                if ids.size and (ids.max() > n or (ids.dtype.kind == "i" and ids.min() < 0)):
-                    raise WetpathError(f"cluster ids must lie in 0..{n}", step="clusters")
-                clus[1:1 + hi - a, 1 + y0:1 + y1, 1:-1] = ids
+                # decoded straight into the padded buffers (zarr) or copied
+                box = (a, y0, 0), (hi, y1, nx)
+                if src.dtype == np.uint8:
+                    fresh = src.read_into(*box, codes[1:1 + hi - a, 1 + y0:1 + y1, 1:-1])
+                else:
+                    fresh = src.region(*box, scratch, "codes")
+                    _check_codes(fresh)
+                    codes[1:1 + hi - a, 1 + y0:1 + y1, 1:-1] = fresh
+                ids = csrc.read_into(*box, clus[1:1 + hi - a, 1 + y0:1 + y1, 1:-1])
+                # value checks of both bands in one compiled pass (no strided numpy reductions)
+                cmax, imin, imax = _band_range(codes[1:1 + hi - a, 1 + y0:1 + y1, 1:-1], ids)
+                if cmax > 3:
+                    _check_codes(fresh)
+                top = max(top, imax)
+                if (n is not None and top > n) or imin < 0:
+                    raise WetpathError("cluster ids must not be negative" if n is None else
+                                       f"cluster ids must lie in 0..{n}", step="clusters")
             if b > nz:
                 codes[1 + nz - a] = 0
                 clus[1 + nz - a] = 0
             for p in range(nw):
-                yield s % 2, a, b - a, cuts[p], cuts[p + 1]
+                yield s % 2, a, b - a, cuts[p], cuts[p + 1], top
 
     def work(w, item):
-        which, a, nk, j0, j1 = item
+        which, a, nk, j0, j1, top = item
         codes, clus = bufs[which]
+        if accs[w][0].shape[0] <= top:
+            accs[w] = _sums(max(top + 1, 2 * accs[w][0].shape[0]), accs[w])
         try:
-            bad = _cluster_cubes(codes, clus, nk, a, j0, j1, cube, connectivity == 26, e8, nmask,
-                                 ps, pt, pc, pw, CUBE_CORNERS, accs[w], bbmins[w], bbmaxs[w])
+            bad = _cluster_cubes(codes, clus, nk, a, j0, j1, cube, connectivity == 26, e8, ps, pt,
+                                 pc, pw, CUBE_CORNERS, *accs[w])
         finally:
             with cond:
                 pending[which] -= 1
@@ -590,10 +804,12 @@ def cluster_lattice_measures(labels, cluster_labels, voxel_size: float = 1.0, *,
                                step="clusters")
 
     run_parallel(items(), work, threads, max_pending=nw)
-    acc = np.sum(accs, axis=0)
-    acc[:, 11] = np.max([a[:, 11] for a in accs], axis=0)
-    bbmin = np.min(bbmins, axis=0)
-    bbmax = np.max(bbmaxs, axis=0)
+    size = max(a[0].shape[0] for a in accs)
+    accs = [_sums(size, a) for a in accs]
+    acc = np.sum([a[0] for a in accs], axis=0)
+    acc[:, 11] = np.max([a[0][:, 11] for a in accs], axis=0)
+    bbmin = np.min([a[1] for a in accs], axis=0)
+    bbmax = np.max([a[2] for a in accs], axis=0)
     ids = np.flatnonzero(acc[:, 0] > 0)
     a = acc[ids]
     vox = a[:, 0]

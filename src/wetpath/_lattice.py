@@ -245,6 +245,9 @@ class _Source:
         self.name, self.step = name, step
         self.is_numpy = isinstance(arr, np.ndarray)
         self.is_dask = hasattr(arr, "dask") and hasattr(arr, "compute")
+        # zarr arrays decode straight into a caller's buffer (no fresh allocation per read)
+        self.into = (not self.is_numpy and not self.is_dask
+                     and hasattr(arr, "get_basic_selection") and hasattr(arr, "metadata"))
 
     def default_depth(self, fallback: int = 64) -> int:
         chunks = self.chunk_shape()
@@ -254,13 +257,41 @@ class _Source:
         """Planes [z0, z1) (clipped to the array), whole (y, x) extent, C-contiguous."""
         return self.region((z0, 0, 0), (z1,) + self.shape[1:])
 
-    def region(self, lo, hi) -> np.ndarray:
-        """Box [lo, hi) clipped to the array, C-contiguous (a view for numpy when possible)."""
+    def region(self, lo, hi, scratch: Scratch | None = None, key: str = "region") -> np.ndarray:
+        """Box [lo, hi) clipped to the array, C-contiguous (a view for numpy when possible).
+
+        With ``scratch``, a zarr array is decoded into the reused buffer ``key`` of it and a view
+        of that buffer is returned: valid until the next read into the same key. Newly allocated
+        memory is slow to touch the first time, so passes reuse one buffer per worker.
+        """
         sl = tuple(slice(max(a, 0), min(b, n)) for a, b, n in zip(lo, hi, self.shape, strict=True))
+        if scratch is not None and self.into:
+            from zarr.core.buffer import default_buffer_prototype
+
+            shape = tuple(max(s.stop - s.start, 0) for s in sl)
+            view = scratch.get(key, shape, self.dtype)
+            if view.size:
+                self.arr.get_basic_selection(
+                    sl, out=default_buffer_prototype().nd_buffer.from_numpy_array(view))
+            return view
         out = self.arr[sl]
         if self.is_dask:
             out = out.compute(scheduler="synchronous")
         return np.ascontiguousarray(out)
+
+    def read_into(self, lo, hi, out: np.ndarray) -> np.ndarray:
+        """Fill ``out`` (any strides, the array's dtype) with the box [lo, hi) inside the array;
+        a zarr array decodes straight into it."""
+        if self.into:
+            from zarr.core.buffer import default_buffer_prototype
+
+            sl = tuple(slice(a, b) for a, b in zip(lo, hi, strict=True))
+            if out.size:
+                self.arr.get_basic_selection(
+                    sl, out=default_buffer_prototype().nd_buffer.from_numpy_array(out))
+        else:
+            out[...] = self.region(lo, hi)
+        return out
 
     def chunk_shape(self) -> tuple[int, int, int] | None:
         """Stored chunk shape of a zarr/dask array (None for numpy)."""
@@ -270,6 +301,23 @@ class _Source:
         if self.is_numpy or chunks is None or len(chunks) != 3:
             return None
         return tuple(int(c) for c in chunks)
+
+
+class Scratch:
+    """Named reusable buffers of one worker: ``get(key, shape, dtype)`` returns a C-contiguous
+    view of a flat buffer that grows when needed and is otherwise reused (its content is not
+    cleared)."""
+
+    def __init__(self):
+        self._bufs: dict[str, np.ndarray] = {}
+
+    def get(self, key: str, shape, dtype) -> np.ndarray:
+        dtype = np.dtype(dtype)
+        n = int(np.prod(shape, dtype=np.int64)) * dtype.itemsize
+        buf = self._bufs.get(key)
+        if buf is None or buf.size < n:
+            buf = self._bufs[key] = np.empty(max(n, 1), np.uint8)
+        return buf[:n].view(dtype).reshape(shape)
 
 
 def _depth(chunks, src: _Source) -> int:
@@ -295,26 +343,50 @@ def _bad_codes(src: _Source):
 
 
 def iter_slabs(src: _Source, depth: int,
-               convert: Callable[[np.ndarray], np.ndarray] | None = None
+               convert: Callable[[np.ndarray], np.ndarray] | None = None, ring: int = 0
                ) -> Iterator[tuple[int, int, np.ndarray]]:
     """Stream an array as z-slabs of cubes with a one-plane halo.
 
     Yields ``(a, b, planes)`` for far-corner ranges [a, b) tiling [0, N + 1): ``planes`` holds voxel
     planes [a − 1, b) with virtual zero planes outside the array. Each stored chunk is read once:
-    the halo plane is carried over from the previous slab, not re-read.
+    the halo plane is carried over from the previous slab, not re-read. With ``ring`` > 0 the
+    slabs of a stored array are decoded into a ring of that many reused buffers: a slab stays
+    valid until ``ring`` − 1 more slabs have been produced, so ``threads`` + 1 suffice for
+    :func:`run_parallel` (at most ``threads`` items pending while the next one is produced).
     """
     nz = src.shape[0]
     conv = convert or (lambda p: p)
+    dtype = np.dtype(np.uint8) if convert else src.dtype
+    bufs = [np.empty((depth + 1,) + src.shape[1:], dtype) for _ in range(ring)] \
+        if ring and not src.is_numpy else []
     carry, carry_at = None, None
-    for a in range(0, nz + 1, depth):
+    for i, a in enumerate(range(0, nz + 1, depth)):
         b = min(a + depth, nz + 1)
         lo, hi = a - 1, b
         if src.is_numpy and lo >= 0 and hi <= nz:
             yield a, b, conv(src.read(lo, hi))
             continue
-        zero = np.zeros((1,) + src.shape[1:], np.uint8 if convert else src.dtype)
-        parts = [zero] if lo < 0 else []
         start = max(lo, 0)
+        if bufs:
+            planes = bufs[i % ring][:hi - lo]
+            if lo < 0:
+                planes[0] = 0
+            elif carry is not None and carry_at == lo:
+                planes[0] = carry
+                start = lo + 1
+            if start < min(hi, nz):
+                view = planes[start - lo:min(hi, nz) - lo]
+                if src.into and src.dtype == dtype:
+                    src.read_into((start, 0, 0), (min(hi, nz),) + src.shape[1:], view)
+                else:
+                    view[...] = conv(src.read(start, min(hi, nz)))
+            if hi > nz:
+                planes[nz - lo] = 0
+            carry, carry_at = planes[-1], hi - 1
+            yield a, b, planes
+            continue
+        zero = np.zeros((1,) + src.shape[1:], dtype)
+        parts = [zero] if lo < 0 else []
         if carry is not None and carry_at == lo:
             parts.append(carry)
             start = lo + 1
@@ -411,7 +483,9 @@ def _histogram_pass(labels, *, chunks, threads, block):
             for i, zb in enumerate(bz):
                 blocks[zb] += _merge_xy(out[i], ysplit, xsplit, block, ny, nx, nby, nbx)
 
-    run_parallel(iter_slabs(src, depth, convert=lambda p: _as_codes(p, src)), work, threads)
+    # ring of reused slab buffers: at most ``nw`` slabs in flight besides the one being read
+    run_parallel(iter_slabs(src, depth, convert=lambda p: _as_codes(p, src), ring=nw + 1), work,
+                 threads)
     return src, np.sum(hist_total, axis=0), blocks
 
 

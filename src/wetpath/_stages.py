@@ -75,23 +75,22 @@ def limit_threads(threads: int | None) -> None:
 
 def label_step(store: str | os.PathLike, out_store: str | os.PathLike, *, connectivity: int = 26,
                threads: int | None = None) -> int:
-    """Label the non-wetting clusters of one step store into ``out_store`` (int32 zarr, same
-    chunks). Returns the number of clusters."""
+    """Label the non-wetting clusters of one step store into ``out_store`` (zarr, same chunks;
+    uint16 ids when there are at most 65 535 clusters, else int32). Returns the number of
+    clusters."""
     import zarr
-    from zarr.codecs import BloscCodec
 
     from ._clusters import label_clusters
-    from ._store import open_step
+    from ._store import create_cluster_array, open_step
 
     limit_threads(threads)
     opened = open_step(store)
     labels = opened.labels
     with atomic_directory(out_store) as tmp:
         root = zarr.open_group(str(tmp), mode="w", zarr_format=3)
-        out = root.create_array("clusters", shape=labels.shape, chunks=labels.chunks,
-                                dtype="int32", fill_value=0, dimension_names=("z", "y", "x"),
-                                compressors=[BloscCodec(cname="zstd", clevel=3)])
-        _, n = label_clusters(labels, connectivity=connectivity, threads=threads, out=out)
+        _, n = label_clusters(
+            labels, connectivity=connectivity, threads=threads,
+            out=lambda n: create_cluster_array(root, labels.shape, labels.chunks, n))
         root.attrs.update({"wetpath": {"n_clusters": int(n), "connectivity": int(connectivity),
                                        "step": opened.attrs.get("step"),
                                        "voxel_size_um": opened.voxel_size_um}})
@@ -99,7 +98,8 @@ def label_step(store: str | os.PathLike, out_store: str | os.PathLike, *, connec
 
 
 def open_clusters(path: str | os.PathLike):
-    """The cluster label array of a store written by :func:`label_step`."""
+    """The cluster label array of a store written by :func:`label_step` (lazy zarr array of
+    uint16, or int32 above 65 535 clusters; 0 = not non-wetting)."""
     import zarr
 
     if not Path(path).is_dir():

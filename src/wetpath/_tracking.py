@@ -30,7 +30,7 @@ from scipy.sparse.csgraph import connected_components
 
 from ._codes import PhaseCodes, to_canonical
 from ._errors import WetpathError
-from ._lattice import _check_voxel_size, _Source, resolve_threads, run_parallel
+from ._lattice import Scratch, _check_voxel_size, _Source, resolve_threads, run_parallel
 
 __all__ = ["overlap_table", "overlap_table_reference", "events_from_overlaps", "lineages",
            "increment_summary", "track_clusters", "EVENT_KINDS"]
@@ -72,16 +72,20 @@ def _grow(keys, vals):
 @njit(cache=True, nogil=True)
 def _overlap_pass(a, b, keys, vals, used):
     """Count (a, b) label pairs over two equally shaped contiguous arrays (pairs (0, 0) skipped).
-    Runs of equal pairs are counted before touching the table; returns the (grown) table."""
+    Runs of equal pairs are counted before touching the table; returns the (grown) table and
+    whether an id outside 0..2³¹ − 1 was met (counting stops there)."""
     fa = a.ravel()
     fb = b.ravel()      # views when contiguous (whole y, x extent), else copies
     last = np.int64(-1)
     run = 0
+    limit = np.int64(1) << (_SHIFT - 1)
     for i in range(fa.size):
         x = np.int64(fa[i])
         y = np.int64(fb[i])
         if x == 0 and y == 0:
             continue
+        if x < 0 or y < 0 or x >= limit or y >= limit:
+            return keys, vals, used, True
         key = (x << _SHIFT) | y
         if key == last:
             run += 1
@@ -96,7 +100,7 @@ def _overlap_pass(a, b, keys, vals, used):
         used += _insert(keys, vals, last, run)
         if 2 * used > keys.size:
             keys, vals = _grow(keys, vals)
-    return keys, vals, used
+    return keys, vals, used, False
 
 
 def _shift3(shift) -> tuple[int, int, int]:
@@ -109,15 +113,17 @@ def _shift3(shift) -> tuple[int, int, int]:
     return s
 
 
-def _window(src: _Source, lo: tuple[int, ...], hi: tuple[int, ...]) -> np.ndarray:
-    """Region [lo, hi) of a source in its own coordinates, zeros outside the array."""
+def _window(src: _Source, lo: tuple[int, ...], hi: tuple[int, ...], scratch: Scratch,
+            key: str) -> np.ndarray:
+    """Region [lo, hi) of a source in its own coordinates, zeros outside the array (read into the
+    reused buffer ``key`` of ``scratch`` when the source is stored)."""
     if all(l >= 0 for l in lo) and all(h <= n for h, n in zip(hi, src.shape, strict=True)):
-        return src.region(lo, hi)
+        return src.region(lo, hi, scratch, key)
     out = np.zeros(tuple(h - l for l, h in zip(lo, hi, strict=True)), src.dtype)
     clip_lo = [max(l, 0) for l in lo]
     clip_hi = [min(h, n) for h, n in zip(hi, src.shape, strict=True)]
     if all(c0 < c1 for c0, c1 in zip(clip_lo, clip_hi, strict=True)):
-        data = src.region(clip_lo, clip_hi)
+        data = src.region(clip_lo, clip_hi, scratch, key)
         dst = tuple(slice(c0 - l, c1 - l) for c0, c1, l in zip(clip_lo, clip_hi, lo, strict=True))
         out[dst] = data
     return out
@@ -156,6 +162,7 @@ def overlap_table(clusters_a, clusters_b, *, shift=None, chunks=None,
     nw = resolve_threads(threads)
     tables = [[np.full(1 << 12, _EMPTY, np.int64), np.zeros(1 << 12, np.int64), 0]
               for _ in range(nw)]
+    scratch = [Scratch() for _ in range(nw)]
 
     # stored arrays are read in bands of one chunk row in y (bounded memory, each chunk decoded
     # once); in-memory arrays in whole slabs
@@ -165,13 +172,13 @@ def overlap_table(clusters_a, clusters_b, *, shift=None, chunks=None,
     def work(w, box):
         z0, y0 = box
         z1, y1 = min(z0 + depth, hi[0]), min(y0 + band, hi[1])
-        a = _window(sa, (z0, y0, lo[2]), (z1, y1, hi[2]))
-        b = _window(sb, (z0 + dz, y0 + dy, lo[2] + dx), (z1 + dz, y1 + dy, hi[2] + dx))
-        for x in (a, b):
-            if x.size and ((x.dtype.kind == "i" and x.min() < 0) or x.max() >= 2**31):
-                raise WetpathError("cluster ids must lie in 0..2³¹ − 1", step="track")
+        a = _window(sa, (z0, y0, lo[2]), (z1, y1, hi[2]), scratch[w], "a")
+        b = _window(sb, (z0 + dz, y0 + dy, lo[2] + dx), (z1 + dz, y1 + dy, hi[2] + dx),
+                    scratch[w], "b")
         t = tables[w]
-        t[0], t[1], t[2] = _overlap_pass(a, b, t[0], t[1], t[2])
+        t[0], t[1], t[2], bad = _overlap_pass(a, b, t[0], t[1], t[2])
+        if bad:
+            raise WetpathError("cluster ids must lie in 0..2³¹ − 1", step="track")
 
     run_parallel(iter(boxes), work, threads)
     keys = np.concatenate([t[0][t[0] != _EMPTY] for t in tables])
