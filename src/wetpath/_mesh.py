@@ -331,6 +331,16 @@ def _face_neighbour(mask: np.ndarray) -> np.ndarray:
     return out
 
 
+def _gauss_weights(order: int) -> np.ndarray:
+    """Correlation weights of ``ndimage.gaussian_filter1d`` (σ = ``SOLID_BLUR``, radius 4σ) for
+    the Gaussian (order 0) or its derivative (order 1)."""
+    r = int(4.0 * SOLID_BLUR + 0.5)
+    x = np.arange(-r, r + 1)
+    phi = np.exp(-0.5 / SOLID_BLUR**2 * x**2)
+    phi /= phi.sum()
+    return (phi if order == 0 else -x / SOLID_BLUR**2 * phi)[::-1]
+
+
 def _blur_and_gradient(mask: np.ndarray, at: tuple) -> list[np.ndarray]:
     """Gaussian blur (``SOLID_BLUR``) of ``mask`` and its derivatives along z, y, x, sampled at
     the voxels ``at``: nine separable passes sharing the smoothed intermediates (equal to
@@ -343,6 +353,38 @@ def _blur_and_gradient(mask: np.ndarray, at: tuple) -> list[np.ndarray]:
     zy = g(z0, 1, 0)
     fields = (g(zy, 2, 0), g(g(g(u, 0, 1), 1, 0), 2, 0), g(g(z0, 1, 1), 2, 0), g(zy, 2, 1))
     return [f[at].astype(np.float64) for f in fields]
+
+
+@njit(cache=True, nogil=True)
+def _point_blur(xs0, xs1, points, w0, w1):  # pragma: no cover
+    """The (z, y) part of a separable Gaussian blur and its gradient at ``points``: ``xs0``/``xs1``
+    are the array already filtered along x by the Gaussian (``w0``) and its derivative (``w1``);
+    edge values continued. Rows: value, ∂z, ∂y, ∂x."""
+    nz, ny = xs0.shape[0], xs0.shape[1]
+    r = w0.shape[0] // 2
+    out = np.zeros((4, points.shape[0]))
+    for p in range(points.shape[0]):
+        k = points[p, 2]
+        for a in range(2 * r + 1):
+            i = min(max(points[p, 0] + a - r, 0), nz - 1)
+            for b in range(2 * r + 1):
+                j = min(max(points[p, 1] + b - r, 0), ny - 1)
+                v0 = np.float64(xs0[i, j, k])
+                out[0, p] += w0[a] * w0[b] * v0
+                out[1, p] += w1[a] * w0[b] * v0
+                out[2, p] += w0[a] * w1[b] * v0
+                out[3, p] += w0[a] * w0[b] * xs1[i, j, k]
+    return out
+
+
+def _blur_and_gradient_at(mask: np.ndarray, points: np.ndarray) -> np.ndarray:
+    """:func:`_blur_and_gradient` (its test oracle) at the voxels ``points`` (P, 3): two passes
+    along x over the array, then 9 × 9 (z, y) sums at the points only. Rows: value, ∂z, ∂y, ∂x."""
+    u = mask.astype(np.float32)
+    xs = [ndimage.gaussian_filter1d(u, SOLID_BLUR, axis=2, order=o, mode="nearest")
+          for o in (0, 1)]
+    return _point_blur(xs[0], xs[1], np.ascontiguousarray(points, np.int64), _gauss_weights(0),
+                       _gauss_weights(1))
 
 
 def wall_distance(solid: np.ndarray, clip: float, pore: np.ndarray | None = None,
@@ -383,13 +425,20 @@ def wall_distance(solid: np.ndarray, clip: float, pore: np.ndarray | None = None
             out[...] = -clip
         return out
     bcoord = np.argwhere(bnd)
-    at = tuple(bcoord.T)
-    a = _blur_and_gradient(pore, at)
+    a = _blur_and_gradient_at(pore, bcoord)
     known = solid | pore
     if known.all():
         p, grad = a[0], np.stack(a[1:], axis=1)
     else:   # normalised convolution: P = G*pore / G*known, ∇P by the quotient rule
-        b = _blur_and_gradient(known, at)
+        # G*known is 1 (its gradient 0) where the window holds no unknown voxel: sum the windows
+        # only of the boundary voxels near unknown ones (array border, field of view)
+        reach = 2 * int(4.0 * SOLID_BLUR + 0.5) + 1
+        near = ndimage.maximum_filter(~known, size=reach, mode="constant", cval=False)
+        near = near[tuple(bcoord.T)]
+        b = np.zeros((4, len(bcoord)))
+        b[0] = 1.0
+        if near.any():
+            b[:, near] = _blur_and_gradient_at(known, bcoord[near])
         p = a[0] / np.maximum(b[0], 1e-6)
         grad = np.stack([ai * b[0] - a[0] * bi for ai, bi in zip(a[1:], b[1:], strict=True)],
                         axis=1)
