@@ -26,8 +26,8 @@ __all__ = ["label_step", "measure_step", "track_step", "increment_step", "collec
 # axis is split into equal parts no longer than this): each chunk is meshed with a halo of 26
 # voxels (blur, smoothing rings, the fits' reach), so larger chunks waste less (volume meshed per
 # voxel at 512³: 2.2 with 192-voxel chunks, 1.45 with 256) but hold more memory (~25 bytes per
-# voxel of chunk and halo, ~0.75 GB at 256, per worker); volumes up to 256 voxels per edge are
-# meshed whole
+# voxel of chunk and halo, ~0.75 GB at 256, per worker); a volume of fewer chunks than workers
+# is cut into one slab along z per worker (from 160³ up; smaller ones are meshed whole)
 MESH_CHUNKS = 256
 # state keys that are tables, not numbers
 _TABLE_KEYS = ("blocks", "clusters")
