@@ -179,6 +179,19 @@ def test_flat_cap_is_unresolved():
     assert math.isnan(row.gauss_nw) and row.contact_loops == 0
 
 
+def test_speck_of_solid_is_not_extrapolated_below_zero():
+    # n and w noise around a single solid voxel: the footprint's band sums extrapolated to the wall
+    # read −98 voxel² before the guard; areas are non-negative by definition, so such a cluster is
+    # unresolved and keeps its face-classified areas
+    rng = np.random.default_rng(2)
+    shape = tuple(rng.integers(12, 21, 3))
+    vol = rng.choice(np.array([0, 2, 3], np.uint8), size=shape, p=[0.05, 0.25, 0.70])
+    vol[tuple(rng.integers(0, s) for s in shape)] = 1
+    table = mesh_measures(vol, 1.5)
+    assert (table["area_ns_mesh"] >= 0).all() and (table["area_nw_mesh"] >= 0).all()
+    assert (table["contact_length"].fillna(0) >= 0).all()
+
+
 def test_chunk_invariance_random_medium():
     # coarse grains so that several clusters are resolved and the band sums are exercised too
     labels = synthetic.random_medium((160, 160, 160), seed=11, grain_scale=6, fluid_scale=8)

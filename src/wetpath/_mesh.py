@@ -1414,7 +1414,10 @@ def finish_mesh(acc: dict, ncl: int, levels: np.ndarray, sigma: float, h: float)
             geo = _fit_at_zero(levels[thin], np.asarray(tot["G"])[thin], 1)
             nrm = _fit_at_zero(levels[thin], np.asarray(tot["N"])[thin], 1)
             chi_nw = float(tot["chi"][0])
-        else:
+            # an area extrapolated below zero (a footprint of a voxel or two on a speck of solid)
+            # means the band cannot be extrapolated either
+            resolved = a_nw >= 0 and a_ns >= 0
+        if not resolved:
             # not band-extrapolable: areas of faces classified by the phase across them
             a_nw, a_ns = tot["Anw_raw"], tot["Ans_raw"]
             k_nw = length = geo = nrm = chi_nw = nan
