@@ -194,7 +194,7 @@ def test_mesh_glue_kernels_equal_numpy(medium):
 @pytest.mark.parametrize("threads", [1, 2])
 def test_squared_distance_equals_scipy(medium, threads):
     # exact Euclidean distance transform (oracle: scipy.ndimage.distance_transform_edt), capped
-    from wetpath._mesh import squared_distance
+    from wetpath._mesh import nearest_feature
 
     lab, _ = medium
     for feature in (lab == 1, lab[:9, :30, 5:7] == 1, np.zeros((5, 6, 7), bool)):
@@ -202,7 +202,7 @@ def test_squared_distance_equals_scipy(medium, threads):
             np.full(feature.shape, np.inf)
         for cap in (3.0, 100.0):
             big = cap**2 + 1.0
-            np.testing.assert_array_equal(squared_distance(feature, cap, threads),
+            np.testing.assert_array_equal(nearest_feature(feature, cap, threads)[0],
                                           np.minimum(ref, big).astype(np.float32))
 
 

@@ -168,12 +168,11 @@ _EDT_BLOCK = 16   # lines transformed together along a strided axis (one cache l
 
 
 @njit(cache=True, nogil=True)
-def _edt_axis(d, idx, track, axis, lo, hi):  # pragma: no cover
+def _edt_axis(d, idx, axis, lo, hi):  # pragma: no cover
     """One separable pass (along ``axis`` 1 or 0) of the squared distance transform of ``d``
     (C-ordered, 3-D), in place, for outer indices ``lo:hi`` (of axis 0 when ``axis`` is 1, of axis
-    1 when it is 0); with ``track`` the nearest-feature labels ``idx`` follow the parabolas'
-    sources. Lines are gathered ``_EDT_BLOCK`` at a time so that every read and write touches
-    whole cache lines."""
+    1 when it is 0); the nearest-feature labels ``idx`` follow the parabolas' sources. Lines are
+    gathered ``_EDT_BLOCK`` at a time so that every read and write touches whole cache lines."""
     n2 = d.shape[2]
     n = d.shape[axis]
     f = np.empty(n)
@@ -190,24 +189,20 @@ def _edt_axis(d, idx, track, axis, lo, hi):  # pragma: no cover
                 for b in range(nb):
                     if axis == 1:
                         buf[q, b] = d[o, q, k0 + b]
-                        if track:
-                            lab[q, b] = idx[o, q, k0 + b]
+                        lab[q, b] = idx[o, q, k0 + b]
                     else:
                         buf[q, b] = d[q, o, k0 + b]
-                        if track:
-                            lab[q, b] = idx[q, o, k0 + b]
+                        lab[q, b] = idx[q, o, k0 + b]
             for b in range(nb):
                 for q in range(n):
                     f[q] = buf[q, b]
                 _edt_line(f, out, src, v, z)
                 for q in range(n):
                     buf[q, b] = out[q]
-                    if track:
-                        val = lab[src[q], b]
-                        if axis == 1:
-                            idx[o, q, k0 + b] = val
-                        else:
-                            idx[q, o, k0 + b] = val
+                    if axis == 1:
+                        idx[o, q, k0 + b] = lab[src[q], b]
+                    else:
+                        idx[q, o, k0 + b] = lab[src[q], b]
             for q in range(n):
                 for b in range(nb):
                     if axis == 1:
@@ -217,10 +212,10 @@ def _edt_axis(d, idx, track, axis, lo, hi):  # pragma: no cover
 
 
 @njit(cache=True, nogil=True)
-def _edt_rows_binary(feature, d, idx, track, big, lo, hi):  # pragma: no cover
+def _edt_rows_binary(feature, d, idx, big, lo, hi):  # pragma: no cover
     """First pass (along x) for a binary feature: squared distance to the nearest ``True`` voxel
     of the row by a forward and a backward sweep, capped at ``big``, for the planes ``lo:hi``;
-    with ``track``, ``idx`` (labels at the feature voxels) receives the nearest one's label."""
+    ``idx`` (labels at the feature voxels) receives the nearest one's label."""
     n0, n1, n = feature.shape
     far = 1 << 30
     for i in range(lo, hi):
@@ -230,24 +225,21 @@ def _edt_rows_binary(feature, d, idx, track, big, lo, hi):  # pragma: no cover
             for q in range(n):
                 if feature[i, j, q]:
                     last = q
-                    if track:
-                        mark = idx[i, j, q]
+                    mark = idx[i, j, q]
                 g = q - last
                 d[i, j, q] = min(float(g) * g, big)
-                if track and last > -far:
+                if last > -far:
                     idx[i, j, q] = mark
             last = far
             for q in range(n - 1, -1, -1):
                 if feature[i, j, q]:
                     last = q
-                    if track:
-                        mark = idx[i, j, q]
+                    mark = idx[i, j, q]
                 g = last - q
                 dist = min(float(g) * g, big)
                 if dist < d[i, j, q]:
                     d[i, j, q] = dist
-                    if track:
-                        idx[i, j, q] = mark
+                    idx[i, j, q] = mark
 
 
 def _split(n: int, threads: int) -> list[tuple[int, int]]:
@@ -255,19 +247,21 @@ def _split(n: int, threads: int) -> list[tuple[int, int]]:
     return list(zip(cuts[:-1].tolist(), cuts[1:].tolist(), strict=True))
 
 
-def _sq_edt(feature: np.ndarray, big: float, threads: int = 1,
-            idx: np.ndarray | None = None) -> np.ndarray:
-    """Squared Euclidean distance (voxels², float32) of every voxel to the nearest ``True`` voxel
-    of ``feature``, capped at ``big``: three separable passes (x, y, z), each split over
-    ``threads`` threads (the kernels release the GIL). If ``idx`` (integers, the shape of
-    ``feature``, holding a label at each feature voxel) is given, every voxel receives in place
-    the label of its nearest feature voxel (meaningless where the distance is capped)."""
+def nearest_feature(feature: np.ndarray, cap: float,
+                    threads: int = 1) -> tuple[np.ndarray, np.ndarray]:
+    """Squared distance (voxels², float32, exact below ``cap`` voxels and capped just above it)
+    to the nearest ``True`` voxel of ``feature`` and that voxel's rank among the ``True`` voxels in
+    C order (int32; meaningless where the distance is capped): three separable passes (x, y, z) of
+    the exact transform of Felzenszwalb & Huttenlocher (2012), each split over ``threads`` threads
+    (the kernels release the GIL). Test oracle: ``scipy.ndimage.distance_transform_edt`` with
+    ``return_indices`` (ties may pick another, equally near voxel)."""
+    feature = np.ascontiguousarray(feature, dtype=np.bool_)
+    idx = np.full(feature.shape, -1, np.int32)
+    idx[feature] = np.arange(int(feature.sum()), dtype=np.int32)
     d = np.empty(feature.shape, np.float32)
-    track = idx is not None
-    lab = idx if track else np.zeros((1, 1, 1), np.int32)
-    fb = np.float32(big)
-    passes = [lambda lo, hi: _edt_rows_binary(feature, d, lab, track, fb, lo, hi)]
-    passes += [lambda lo, hi, ax=ax: _edt_axis(d, lab, track, ax, lo, hi) for ax in (1, 0)]
+    big = np.float32(float(cap) ** 2 + 1.0)
+    passes = [lambda lo, hi: _edt_rows_binary(feature, d, idx, big, lo, hi)]
+    passes += [lambda lo, hi, ax=ax: _edt_axis(d, idx, ax, lo, hi) for ax in (1, 0)]
     for k, run in enumerate(passes):
         parts = _split(d.shape[1] if k == 2 else d.shape[0], threads)
         if len(parts) == 1:
@@ -275,27 +269,7 @@ def _sq_edt(feature: np.ndarray, big: float, threads: int = 1,
         else:
             with ThreadPoolExecutor(len(parts)) as pool:
                 list(pool.map(lambda p, run=run: run(*p), parts))
-    return np.minimum(d, fb, out=d)
-
-
-def squared_distance(feature: np.ndarray, cap: float, threads: int = 1) -> np.ndarray:
-    """Squared distance (voxels², float32) to the nearest ``True`` voxel, exact below ``cap``
-    (voxels; squared distances are integers, exact in float32 up to 2²⁴)."""
-    return _sq_edt(np.ascontiguousarray(feature, dtype=np.bool_), float(cap) ** 2 + 1.0,
-                   threads)
-
-
-def nearest_feature(feature: np.ndarray, cap: float,
-                    threads: int = 1) -> tuple[np.ndarray, np.ndarray]:
-    """Squared distance (voxels², exact below ``cap``) to the nearest ``True`` voxel of
-    ``feature`` and its rank among the ``True`` voxels in C order (int32; test oracle:
-    ``scipy.ndimage.distance_transform_edt`` with ``return_indices``; ties may pick another,
-    equally near voxel)."""
-    feature = np.ascontiguousarray(feature, dtype=np.bool_)
-    idx = np.full(feature.shape, -1, np.int32)
-    idx[feature] = np.arange(int(feature.sum()), dtype=np.int32)
-    d2 = _sq_edt(feature, float(cap) ** 2 + 1.0, threads, idx)
-    return d2, idx
+    return np.minimum(d, big, out=d), idx
 
 
 @njit(cache=True, nogil=True)
