@@ -206,6 +206,34 @@ def test_squared_distance_equals_scipy(medium, threads):
                                           np.minimum(ref, big).astype(np.float32))
 
 
+@pytest.mark.parametrize("cap", [3.0, 18.5])
+def test_windowed_distance_passes_equal_lower_envelope(medium, cap):
+    # the windowed minimum of the capped passes equals the lower-envelope transform (the path
+    # of large caps, itself checked against scipy above): distances and nearest-voxel labels
+    from wetpath import _mesh as m
+
+    lab, _ = medium
+    feature = np.ascontiguousarray(lab == 1)
+    big = np.float32(cap**2 + 1.0)
+    w = int(np.floor(np.sqrt(big)))
+    out = []
+    for envelope in (False, True):
+        idx = np.full(feature.shape, -1, np.int32)
+        idx[feature] = np.arange(int(feature.sum()), dtype=np.int32)
+        d = np.empty(feature.shape, np.float32)
+        m._edt_rows_binary(feature, d, idx, big, 0, d.shape[0])
+        for ax, n in ((1, d.shape[0]), (0, d.shape[1])):
+            if envelope:
+                m._edt_axis(d, idx, ax, 0, n)
+            else:
+                m._edt_window(d, idx, ax, 0, n, w)
+        out.append((d, idx))
+    (d_w, i_w), (d_e, i_e) = out
+    near = d_e < big
+    np.testing.assert_array_equal(np.minimum(d_w, big), np.minimum(d_e, big))
+    np.testing.assert_array_equal(i_w[near], i_e[near])
+
+
 def test_chunks_in_worker_processes_equal_serial(medium, monkeypatch):
     # the forked-process path (used from 160³ up) gives the same tables as one thread
     from wetpath import _mesh

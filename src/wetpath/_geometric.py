@@ -313,6 +313,12 @@ def _face_sums(points, lab, radius):  # pragma: no cover
     return out
 
 
+def _plane_radius(sigma: float) -> float:
+    """Radius (voxels) of the solid-plane fit around a foot point (its faces are read up to
+    three voxels further: :func:`_face_sums`)."""
+    return max(4.0, 3 * sigma)
+
+
 def _solid_planes(points: np.ndarray, lab: np.ndarray, radius: float):
     """Least-squares tangent plane of the solid surface near each point: the centroid and the
     smallest principal axis of the solid–fluid voxel-face centres within ``radius`` (box voxels),
@@ -387,7 +393,7 @@ def box_contact_angles(*, verts, edges, d, nu, vnorm, v_bad, lab, origin, own_lo
     beta, frame, count, span = _fit_quadrics(foot, verts[fit], -vnorm[fit], d[fit], fit_radius,
                                              _SLOPE_SCALE)
     unresolved = (span < _MIN_SPAN) | (count < _MIN_FIT)
-    centre, nu_s, plane_ok = _solid_planes(foot, lab, max(4.0, 3 * sigma))
+    centre, nu_s, plane_ok = _solid_planes(foot, lab, _plane_radius(sigma))
     where, nu_wn, cut_ok = _intersect(foot, beta, frame, centre, nu_s, max_step=fit_radius)
     cos = np.clip(np.sum(nu_s * nu_wn, axis=1), -1, 1)
     theta = np.where(~unresolved & plane_ok & cut_ok, np.degrees(np.arccos(cos)), np.nan)
@@ -535,7 +541,8 @@ def mesh_and_angles(labels: np.ndarray, voxel_size: float = 1.0, *,
     # an owned point lies up to ``spacing`` past the core; its fit reaches ``fit_radius`` further
     acc, ncl, levels = mesh_sums(lab, clusters=clusters, sigma=sigma, chunks=chunks,
                                  threads=resolve_threads(threads), contact=contact,
-                                 reach=spacing + fit_radius + 1)
+                                 reach=spacing + fit_radius + 1,
+                                 context=band[0] + _plane_radius(sigma) + 3)
     if ncl == 0:
         return (mesh_measures(lab, voxel_size, clusters=clusters, sigma=sigma),
                 pd.DataFrame({c: pd.Series(dtype=float) for c in _COLUMNS}))
