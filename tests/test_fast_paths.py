@@ -294,3 +294,30 @@ def test_point_blur_equals_separable_passes(medium):
     ref = m._blur_and_gradient(known, tuple(pts.T))
     for g, r in zip(got, ref, strict=True):
         np.testing.assert_allclose(g, r, rtol=0, atol=1e-6)   # float32 passes vs float64 sums
+
+
+def test_level_curves_kernel_equals_numpy(medium):
+    # the compiled level curves at every band level against the numpy oracle `level_curve`
+    # (lengths and line integrals to 1e-12: only the order of the additions differs; the
+    # segments of the first level exactly)
+    from wetpath import _mesh as m
+
+    lab, clusters = medium
+    k = int(np.bincount(clusters.ravel())[1:].argmax()) + 1
+    _, verts, faces = smoothed_mesh(clusters == k, 1.0)
+    edges, face_edges = m._edges(faces, len(verts))
+    _, _, _, _, _, fnorm = m._vertex_kernel(verts, faces)
+    d, grad = m._sample_kernel(wall_distance(lab == 1, 14.0), verts)
+    nu = m._unit(grad)
+    rng = np.random.default_rng(5)
+    e_own, f_own = rng.random(len(edges)) < 0.8, rng.random(len(faces)) < 0.8
+    levels = m.band_levels(1.0)
+    got = m._level_curves_kernel(verts, face_edges, edges, e_own, d, nu, fnorm, f_own, levels)
+    assert got[0][0] > 0                                        # the curve exists
+    for i, lev in enumerate(levels):
+        length, geo_s, nrm, pair = m.level_curve(verts, faces, edges, face_edges, d, nu, fnorm,
+                                                 lev, e_own, f_own)
+        np.testing.assert_allclose([got[0][i], got[1][i], got[2][i]],
+                                   [length.sum(), geo_s, nrm], rtol=1e-12, atol=1e-12)
+        if i == 0:
+            np.testing.assert_array_equal(got[3], pair)

@@ -866,6 +866,100 @@ def level_curve(verts, faces, edges, face_edges, d, nu, normal, m, edge_own, fac
     return length[own], geo, nrm, loc[pair[own]]
 
 
+@njit(cache=True, nogil=True)
+def _unit3(x, y, z):  # pragma: no cover
+    n = max(math.sqrt(x * x + y * y + z * z), 1e-30)
+    return x / n, y / n, z / n
+
+
+@njit(cache=True, nogil=True)
+def _level_curves_kernel(verts, fe, edges, edge_own, d, nu, normal, face_own,
+                         levels):  # pragma: no cover
+    """Compiled :func:`level_curve` at every level of ``levels`` (its test oracle): the faces
+    ``fe`` (their three edges, indices into ``edges``) with normals ``normal`` and ownership
+    ``face_own``. Returns per level the owned length, ∫ k_g^s ds and ∫ k_n^s ds, and the owned
+    segments of the first level as (edge, edge) pairs."""
+    nl, nf, ne = levels.shape[0], fe.shape[0], edges.shape[0]
+    length_out, geo_out, nrm_out = np.zeros(nl), np.zeros(nl), np.zeros(nl)
+    pts = np.zeros((ne, 3))
+    nus = np.zeros((ne, 3))
+    cross = np.zeros(ne, np.bool_)
+    out_seg = np.full(ne, -1, np.int64)
+    in_seg = np.full(ne, -1, np.int64)
+    seg_pair = np.empty((nf, 2), np.int64)
+    seg_face = np.empty(nf, np.int64)
+    tu = np.empty((nf, 3))
+    first = np.empty((0, 2), np.int64)
+    for lv in range(nl):
+        m = levels[lv]
+        for e in range(ne):
+            a, b = edges[e, 0], edges[e, 1]
+            cross[e] = (d[a] > m) != (d[b] > m)
+            if cross[e]:
+                t = (m - d[a]) / (d[b] - d[a])
+                for c in range(3):
+                    pts[e, c] = verts[a, c] + t * (verts[b, c] - verts[a, c])
+                nus[e, 0], nus[e, 1], nus[e, 2] = _unit3(nu[a, 0] + t * (nu[b, 0] - nu[a, 0]),
+                                                         nu[a, 1] + t * (nu[b, 1] - nu[a, 1]),
+                                                         nu[a, 2] + t * (nu[b, 2] - nu[a, 2]))
+        ns = 0
+        for f in range(nf):
+            p0, p1, cnt = -1, -1, 0
+            for c in range(3):
+                if cross[fe[f, c]]:
+                    cnt += 1
+                    if p0 < 0:
+                        p0 = fe[f, c]
+                    else:
+                        p1 = fe[f, c]
+            if cnt != 2:
+                continue
+            tx, ty, tz = pts[p1, 0] - pts[p0, 0], pts[p1, 1] - pts[p0, 1], pts[p1, 2] - pts[p0, 2]
+            mx, my, mz = _unit3(nus[p0, 0] + nus[p1, 0], nus[p0, 1] + nus[p1, 1],
+                                nus[p0, 2] + nus[p1, 2])
+            # (mid ν × t) · face normal > 0: the segment runs the other way
+            if ((my * tz - mz * ty) * normal[f, 0] + (mz * tx - mx * tz) * normal[f, 1]
+                    + (mx * ty - my * tx) * normal[f, 2]) > 0:
+                p0, p1, tx, ty, tz = p1, p0, -tx, -ty, -tz
+            ln = math.sqrt(tx * tx + ty * ty + tz * tz)
+            w = max(ln, 1e-30)
+            tu[ns, 0], tu[ns, 1], tu[ns, 2] = tx / w, ty / w, tz / w
+            seg_pair[ns, 0], seg_pair[ns, 1], seg_face[ns] = p0, p1, f
+            out_seg[p0] = ns
+            in_seg[p1] = ns
+            if face_own[f]:
+                length_out[lv] += ln
+            ns += 1
+        geo, nrm = 0.0, 0.0
+        for e in range(ne):
+            if not cross[e]:
+                continue
+            so, si = out_seg[e], in_seg[e]
+            if so >= 0 and si >= 0 and edge_own[e]:
+                dx, dy, dz = tu[so, 0] - tu[si, 0], tu[so, 1] - tu[si, 1], tu[so, 2] - tu[si, 2]
+                bx, by, bz = _unit3(tu[si, 0] + tu[so, 0], tu[si, 1] + tu[so, 1],
+                                    tu[si, 2] + tu[so, 2])
+                vx, vy, vz = nus[e, 0], nus[e, 1], nus[e, 2]
+                cx, cy, cz = _unit3(vy * bz - vz * by, vz * bx - vx * bz, vx * by - vy * bx)
+                geo += dx * cx + dy * cy + dz * cz
+                nrm += dx * vx + dy * vy + dz * vz
+            out_seg[e] = -1
+            in_seg[e] = -1
+        geo_out[lv], nrm_out[lv] = geo, nrm
+        if lv == 0:
+            k = 0
+            for q in range(ns):
+                if face_own[seg_face[q]]:
+                    k += 1
+            first = np.empty((k, 2), np.int64)
+            k = 0
+            for q in range(ns):
+                if face_own[seg_face[q]]:
+                    first[k, 0], first[k, 1] = seg_pair[q, 0], seg_pair[q, 1]
+                    k += 1
+    return length_out, geo_out, nrm_out, first
+
+
 def _raw_mesh(indicator: np.ndarray, sigma: float):
     """Blur, marching cubes at 0.5, faces wound outward; with the unique edges."""
     blur = ndimage.gaussian_filter(indicator.astype(np.float32), sigma, mode="constant", cval=0.0)
@@ -1170,21 +1264,16 @@ def _cluster_box_sums(lab, clu, cid, sd, lo, own_lo, own_hi, sigma, levels, key_
     # the level curves only meet faces whose distance range overlaps the band
     fsub = np.flatnonzero((d3[:, 2] > levels[0]) & (d3[:, 0] <= levels[-1]))
     e_sub, fe_sub = np.unique(face_edges[fsub], return_inverse=True)
-    fe_sub = fe_sub.reshape(-1, 3)
-    edges_sub, e_own_sub, d3_sub = edges[e_sub], e_own[e_sub], d3[fsub]
-    for k, m in enumerate(levels):
-        res["Lid"][k] = float(lid[k] + vflux[k])
-        # only faces with corners on both sides of m can hold a piece of the curve
-        at = np.flatnonzero((d3_sub[:, 0] <= m) & (d3_sub[:, 2] > m))
-        fl = fsub[at]
-        seg_len, geo, nrm, pair = level_curve(verts, faces[fl], edges_sub, fe_sub[at], d, nu,
-                                              fnorm[fl], m, e_own_sub, good_f[fl])
-        res["L"][k], res["G"][k], res["N"][k] = float(seg_len.sum()), geo, nrm
-        if k == 0 and len(pair):
-            vkey = _vertex_keys(g0, key_dims)
-            es = edges_sub
-            ek = np.sort(np.stack([vkey[es[:, 0]], vkey[es[:, 1]]], axis=1), axis=1)
-            res["segs"] = np.concatenate([ek[pair[:, 0]], ek[pair[:, 1]]], axis=1)
+    fe_sub = np.ascontiguousarray(fe_sub.reshape(-1, 3))
+    edges_sub = np.ascontiguousarray(edges[e_sub])
+    res["Lid"] = lid + vflux
+    res["L"], res["G"], res["N"], pair = _level_curves_kernel(
+        verts, fe_sub, edges_sub, e_own[e_sub], d, nu, np.ascontiguousarray(fnorm[fsub]),
+        good_f[fsub], levels)
+    if len(pair):
+        vkey = _vertex_keys(g0, key_dims)
+        ek = np.sort(np.stack([vkey[edges_sub[:, 0]], vkey[edges_sub[:, 1]]], axis=1), axis=1)
+        res["segs"] = np.concatenate([ek[pair[:, 0]], ek[pair[:, 1]]], axis=1)
     res["V"], res["E"], res["F"] = float(v_own.sum()), float(e_own.sum()), float(f_own.sum())
 
     # mean curvature away from the solid, corrected for the blur's level-set shift
