@@ -321,3 +321,15 @@ def test_level_curves_kernel_equals_numpy(medium):
                                    [length.sum(), geo_s, nrm], rtol=1e-12, atol=1e-12)
         if i == 0:
             np.testing.assert_array_equal(got[3], pair)
+
+
+def test_near_unknown_equals_maximum_filter(medium):
+    # voxels with an unknown voxel in their 9³ cube: oracle scipy.ndimage.maximum_filter
+    from wetpath import _mesh as m
+
+    lab, _ = medium
+    known = np.pad(lab != 0, 3)                       # unknown shell, as outside the array
+    known[20, 20, 20] = False                         # and one excluded voxel inside
+    pts = np.argwhere(np.ones(known.shape, bool))[::7]
+    ref = ndimage.maximum_filter(~known, size=9, mode="constant", cval=False)[tuple(pts.T)]
+    np.testing.assert_array_equal(m._near_unknown(known, pts, 4), ref)

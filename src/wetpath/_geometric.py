@@ -538,11 +538,13 @@ def mesh_and_angles(labels: np.ndarray, voxel_size: float = 1.0, *,
     band = (2.5 * sigma, 9.0) if band is None else band
     contact = functools.partial(box_contact_angles, sigma=sigma, spacing=spacing,
                                 fit_radius=fit_radius, band=band)
-    # an owned point lies up to ``spacing`` past the core; its fit reaches ``fit_radius`` further
+    # a point's fit reaches ``fit_radius`` beyond it; an owned point lies inside the core when the
+    # chunk borders fall on cell borders (integer spacing), else up to ``spacing`` past it
+    align = int(spacing) if float(spacing).is_integer() and spacing >= 1 else 1
     acc, ncl, levels = mesh_sums(lab, clusters=clusters, sigma=sigma, chunks=chunks,
                                  threads=resolve_threads(threads), contact=contact,
-                                 reach=spacing + fit_radius + 1,
-                                 context=band[0] + _plane_radius(sigma) + 3)
+                                 reach=fit_radius + 1 + (0 if align > 1 else spacing),
+                                 context=band[0] + _plane_radius(sigma) + 3, align=align)
     if ncl == 0:
         return (mesh_measures(lab, voxel_size, clusters=clusters, sigma=sigma),
                 pd.DataFrame({c: pd.Series(dtype=float) for c in _COLUMNS}))

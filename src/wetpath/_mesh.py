@@ -457,6 +457,39 @@ def _point_blur(xs0, xs1, points, w0, w1):  # pragma: no cover
     return out
 
 
+@njit(cache=True, nogil=True)
+def _near_unknown(known, points, r):  # pragma: no cover
+    """Whether the (2r + 1)³ cube around each point holds a voxel outside ``known`` (inside the
+    array): ``ndimage.maximum_filter(~known, 2r + 1, mode="constant")`` at the points, from one
+    pass along x and (z, y) windows at the points only."""
+    nz, ny, nx = known.shape
+    row = np.zeros((nz, ny, nx), np.bool_)      # an unknown voxel within r along x
+    for i in range(nz):
+        for j in range(ny):
+            last = -(1 << 30)
+            for k in range(nx):                 # nearest unknown at or before k
+                if not known[i, j, k]:
+                    last = k
+                row[i, j, k] = k - last <= r
+            last = 1 << 30
+            for k in range(nx - 1, -1, -1):     # ... at or after k
+                if not known[i, j, k]:
+                    last = k
+                if last - k <= r:
+                    row[i, j, k] = True
+    out = np.zeros(points.shape[0], np.bool_)
+    for p in range(points.shape[0]):
+        k = points[p, 2]
+        for i in range(max(points[p, 0] - r, 0), min(points[p, 0] + r + 1, nz)):
+            for j in range(max(points[p, 1] - r, 0), min(points[p, 1] + r + 1, ny)):
+                if row[i, j, k]:
+                    out[p] = True
+                    break
+            if out[p]:
+                break
+    return out
+
+
 def _blur_and_gradient_at(mask: np.ndarray, points: np.ndarray) -> np.ndarray:
     """:func:`_blur_and_gradient` (its test oracle) at the voxels ``points`` (P, 3): two passes
     along x over the array, then 9 × 9 (z, y) sums at the points only. Rows: value, ∂z, ∂y, ∂x."""
@@ -510,9 +543,7 @@ def wall_distance(solid: np.ndarray, clip: float, pore: np.ndarray | None = None
     else:   # normalised convolution: P = G*pore / G*known, ∇P by the quotient rule
         # G*known is 1 (its gradient 0) where the window holds no unknown voxel: sum the windows
         # only of the boundary voxels near unknown ones (array border, field of view)
-        reach = 2 * int(4.0 * SOLID_BLUR + 0.5) + 1
-        near = ndimage.maximum_filter(~known, size=reach, mode="constant", cval=False)
-        near = near[tuple(bcoord.T)]
+        near = _near_unknown(known, bcoord, int(4.0 * SOLID_BLUR + 0.5))
         b = np.zeros((4, len(bcoord)))
         b[0] = 1.0
         if near.any():
@@ -1395,7 +1426,7 @@ def mesh_measures(labels: np.ndarray, voxel_size: float = 1.0, *,
 
 def mesh_sums(labels: np.ndarray, *, clusters: np.ndarray | None = None, connectivity: int = 26,
               sigma: float = 1.0, chunks: int | tuple | None = None, threads: int | None = None,
-              contact=None, reach: float = 0.0, context: float = 0.0
+              contact=None, reach: float = 0.0, context: float = 0.0, align: int = 1
               ) -> tuple[dict, int, np.ndarray]:
     """Per-cluster, per-box sums behind :func:`mesh_measures` (same parameters).
 
@@ -1406,7 +1437,9 @@ def mesh_sums(labels: np.ndarray, *, clusters: np.ndarray | None = None, connect
     the array coordinate of the box origin and the owned core ``[own_lo, own_hi)`` (array
     coordinates); its result is kept under ``"contact"`` in the box's sums. ``reach`` (voxels)
     widens the halo so that the geometry up to that far beyond the core is exact; ``context``
-    (voxels) is how far beyond a cluster's mesh the callback reads the phase codes.
+    (voxels) is how far beyond a cluster's mesh the callback reads the phase codes. Chunk borders
+    fall on multiples of ``align`` voxels (chunk edges are rounded up to them), so that a callback
+    that owns its elements by ``align``-voxel cells finds every owned element inside the core.
 
     Returns the sums of every cluster (cluster id → list of per-box dicts), the number of clusters
     and the band levels (voxels).
@@ -1446,7 +1479,8 @@ def mesh_sums(labels: np.ndarray, *, clusters: np.ndarray | None = None, connect
         if math.prod(parts) < threads and labels.size >= PROCESS_MIN_VOXELS:
             # fewer chunks than workers: slabs along z so that every worker has one
             parts[0] = max(parts[0], min(threads, int(shape[0]) // (2 * halo) or 1))
-        csize = [int(math.ceil(n / k)) for n, k in zip(shape, parts, strict=True)]
+        csize = [int(math.ceil(math.ceil(n / k) / align)) * align
+                 for n, k in zip(shape, parts, strict=True)]
     ranges = [_chunk_ranges(int(n), s, pad) for n, s in zip(shape, csize, strict=True)]
     objs = ndimage.find_objects(clusters)
     bb = np.array([[s.start for s in o] + [s.stop for s in o] if o is not None
@@ -1619,13 +1653,17 @@ def finish_mesh(acc: dict, ncl: int, levels: np.ndarray, sigma: float, h: float)
 def _count_loops(segs: np.ndarray, seg_cluster: np.ndarray, ncl: int) -> np.ndarray:
     """Connected level-curve pieces per cluster; a segment joins two crossing points, each named by
     the global ids of the mesh edge it lies on."""
-    nodes, inv = np.unique(segs.reshape(-1, 2), axis=0, return_inverse=True)
+    # a node is a pair of vertex keys: number the keys, then the pairs (1-D sorts: np.unique
+    # along axis 0 sorts raw bytes and is several times slower)
+    keys, kinv = np.unique(segs.ravel(), return_inverse=True)
+    kinv = kinv.reshape(-1, 2).astype(np.int64)
+    _, inv = np.unique(kinv[:, 0] * len(keys) + kinv[:, 1], return_inverse=True)
     inv = inv.reshape(-1, 2)
-    n = len(nodes)
+    n = int(inv.max()) + 1
     g = sparse.coo_matrix((np.ones(len(inv)), (inv[:, 0], inv[:, 1])), shape=(n, n))
-    _, comp = connected_components(g, directed=False)
-    pairs = np.unique(np.stack([seg_cluster, comp[inv[:, 0]]], axis=1), axis=0)
-    return np.bincount(pairs[:, 0], minlength=ncl + 1)[1:]
+    ncomp, comp = connected_components(g, directed=False)
+    pairs = np.unique(seg_cluster.astype(np.int64) * ncomp + comp[inv[:, 0]])
+    return np.bincount(pairs // ncomp, minlength=ncl + 1)[1:]
 
 
 def mesh_totals(table: pd.DataFrame) -> dict[str, float]:
