@@ -527,14 +527,12 @@ def wall_distance(solid: np.ndarray, clip: float, pore: np.ndarray | None = None
     threads : int
         Threads of the distance transform.
     """
-    out = np.full(solid.shape, clip, np.float32)
     solid = np.ascontiguousarray(solid, dtype=np.bool_)
     pore = ~solid if pore is None else np.asarray(pore, dtype=np.bool_) & ~solid
     bnd = solid & _face_neighbour(pore)
     if not bnd.any():
-        if solid.any() and not pore.any():
-            out[...] = -clip
-        return out
+        return np.full(solid.shape, -clip if solid.any() and not pore.any() else clip,
+                       np.float32)
     bcoord = np.argwhere(bnd)
     a = _blur_and_gradient_at(pore, bcoord)
     known = solid | pore
