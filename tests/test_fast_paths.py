@@ -366,3 +366,18 @@ def test_gaussian_blur_equals_scipy(medium, sigma):
     field = wall_distance(lab == 1, 8.0)
     np.testing.assert_array_equal(m.gaussian_blur(field, sigma, nearest=True),
                                   ndimage.gaussian_filter(field, sigma, mode="nearest"))
+
+
+def test_point_blur_direct_equals_passes(medium):
+    # the x sums at the points' windows only equal the passes over the array, bit for bit
+    from wetpath import _mesh as m
+
+    lab, _ = medium
+    known = np.pad(lab != 0, 3)
+    rng = np.random.default_rng(6)
+    pts = np.argwhere(known)[rng.choice(int(known.sum()), 200, replace=False)]
+    pts = np.concatenate([pts, [[0, 0, 0], np.array(known.shape) - 1]])
+    w0, w1 = m._gauss_weights(0), m._gauss_weights(1)
+    xs0, xs1 = m._x_blur_pair(known, w0, w1)
+    np.testing.assert_array_equal(m._point_blur_direct(known, pts, w0, w1),
+                                  m._point_blur(xs0, xs1, pts, w0, w1))

@@ -490,12 +490,50 @@ def _near_unknown(known, points, r):  # pragma: no cover
     return out
 
 
+@njit(cache=True, nogil=True)
+def _point_blur_direct(mask, points, w0, w1):  # pragma: no cover
+    """:func:`_point_blur` of :func:`_x_blur_pair` of ``mask`` without the passes over the array:
+    the x sums are formed at the (z, y) windows of the points only, with the same arithmetic
+    (float64 sums rounded to float32, then the same window sums), so equal bit for bit; cheaper
+    when the points are few."""
+    nz, ny, nx = mask.shape
+    r = w0.shape[0] // 2
+    n = points.shape[0]
+    out = np.zeros((4, n))
+    for p in range(n):
+        k = points[p, 2]
+        for a in range(2 * r + 1):
+            i = min(max(points[p, 0] + a - r, 0), nz - 1)
+            for b in range(2 * r + 1):
+                j = min(max(points[p, 1] + b - r, 0), ny - 1)
+                c = 1.0 if mask[i, j, k] else 0.0
+                a0 = c * w0[r]
+                a1 = c * w1[r]
+                for q in range(r, 0, -1):
+                    lo = 1.0 if mask[i, j, max(k - q, 0)] else 0.0
+                    hi = 1.0 if mask[i, j, min(k + q, nx - 1)] else 0.0
+                    a0 += (lo + hi) * w0[r - q]
+                    a1 += (lo - hi) * w1[r - q]
+                v0 = np.float64(np.float32(a0))
+                c00, c10, c01 = w0[a] * w0[b], w1[a] * w0[b], w0[a] * w1[b]
+                out[0, p] += c00 * v0
+                out[1, p] += c10 * v0
+                out[2, p] += c01 * v0
+                out[3, p] += c00 * np.float64(np.float32(a1))
+    return out
+
+
 def _blur_and_gradient_at(mask: np.ndarray, points: np.ndarray) -> np.ndarray:
     """:func:`_blur_and_gradient` (its test oracle) at the voxels ``points`` (P, 3): two passes
-    along x over the array, then 9 × 9 (z, y) sums at the points only. Rows: value, ∂z, ∂y, ∂x."""
+    along x over the array, then 9 × 9 (z, y) sums at the points only; for few points (fewer
+    than one per 400 voxels) the x sums at the points' windows only. Rows: value, ∂z, ∂y, ∂x."""
     w0, w1 = _gauss_weights(0), _gauss_weights(1)
-    xs0, xs1 = _x_blur_pair(np.ascontiguousarray(mask, dtype=np.bool_), w0, w1)
-    return _point_blur(xs0, xs1, np.ascontiguousarray(points, np.int64), w0, w1)
+    mask = np.ascontiguousarray(mask, dtype=np.bool_)
+    points = np.ascontiguousarray(points, np.int64)
+    if len(points) * 400 < mask.size:
+        return _point_blur_direct(mask, points, w0, w1)
+    xs0, xs1 = _x_blur_pair(mask, w0, w1)
+    return _point_blur(xs0, xs1, points, w0, w1)
 
 
 def wall_distance(solid: np.ndarray, clip: float, pore: np.ndarray | None = None,
