@@ -1041,6 +1041,7 @@ def _blur_pass(src, dst, flags, w, axis, nearest):  # pragma: no cover
     n = src.shape[axis]
     acc = np.empty(nx)
     line = np.empty(n + 2 * r)
+    zero = np.zeros(nx, src.dtype)
     out_flags = np.zeros(flags.shape, np.bool_)
     for i in range(nz):
         for j in range(ny):
@@ -1068,22 +1069,18 @@ def _blur_pass(src, dst, flags, w, axis, nearest):  # pragma: no cover
                     for k in range(nx):
                         acc[k] += (line[r + k - q] + line[r + k + q]) * w[r - q]
             else:
+                centre = src[i, j]
                 for k in range(nx):
-                    acc[k] = np.float64(src[i, j, k]) * w[r]
+                    acc[k] = np.float64(centre[k]) * w[r]
                 for q in range(r, 0, -1):
                     lo, hi = t - q, t + q
-                    in_lo, in_hi = lo >= 0, hi < n
                     if nearest:
                         lo, hi = max(lo, 0), min(hi, n - 1)
-                        in_lo, in_hi = True, True
+                    row_lo = zero if lo < 0 else (src[lo, j] if axis == 0 else src[i, lo])
+                    row_hi = zero if hi >= n else (src[hi, j] if axis == 0 else src[i, hi])
+                    wq = w[r - q]
                     for k in range(nx):
-                        a = 0.0
-                        b = 0.0
-                        if in_lo:
-                            a = np.float64(src[lo, j, k] if axis == 0 else src[i, lo, k])
-                        if in_hi:
-                            b = np.float64(src[hi, j, k] if axis == 0 else src[i, hi, k])
-                        acc[k] += (a + b) * w[r - q]
+                        acc[k] += (np.float64(row_lo[k]) + np.float64(row_hi[k])) * wq
             for k in range(nx):
                 dst[i, j, k] = acc[k]
     flags[...] = out_flags
