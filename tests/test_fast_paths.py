@@ -381,3 +381,16 @@ def test_point_blur_direct_equals_passes(medium):
     xs0, xs1 = m._x_blur_pair(known, w0, w1)
     np.testing.assert_array_equal(m._point_blur_direct(known, pts, w0, w1),
                                   m._point_blur(xs0, xs1, pts, w0, w1))
+
+
+def test_boundary_voxels_equal_dilation(medium):
+    # solid voxels with a fluid face-neighbour: oracle scipy.ndimage.binary_dilation (6-cross)
+    from wetpath import _mesh as m
+
+    lab, _ = medium
+    solid, pore = lab == 1, np.isin(lab, (2, 3))
+    pore[5, 5, 5] = True                                     # pore flag on a solid voxel: ignored
+    ref = solid & ndimage.binary_dilation(pore & ~solid, ndimage.generate_binary_structure(3, 1))
+    bnd, n, any_solid, any_pore, all_known = m._boundary_voxels(solid, pore)
+    np.testing.assert_array_equal(bnd, ref)
+    assert (n, any_solid, any_pore, all_known) == (ref.sum(), True, True, bool((solid | pore).all()))
