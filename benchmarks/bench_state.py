@@ -48,12 +48,10 @@ from pathlib import Path
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from bench_streaming import _reflect, _rss_mb, machine  # noqa: E402
+from bench_streaming import MEDIA, _reflect, _rss_mb, machine  # noqa: E402
 
 STAGES = ("read", "lattice", "label", "cluster_lattice", "mesh", "mesh_angles", "topological",
           "perturb", "overlap", "measure_step")
-MEDIA = {"pores20": (8.0, 10.0), "fine": (3.0, 4.0)}
-"""Grain and fluid scales (voxels) of the benchmark media."""
 
 
 def make_stores(size: int, cache: Path, medium: str = "pores20",
@@ -261,7 +259,7 @@ def main(argv=None) -> int:
         sizes = [40] if args.smoke else args.size
         extra = ["--cache", str(args.cache)] if args.cache else []
         return bench_streaming.main(["--sizes", "--zarr", *map(str, sizes), "--repeat", "1",
-                                     "--threads", str(threads), *extra])
+                                     "--threads", str(threads), "--medium", args.medium, *extra])
     if args.smoke:
         args.size, args.area = [40], (40 if args.area else None)
     cache = args.cache or Path(tempfile.mkdtemp(prefix="wetpath-bench-state-"))

@@ -7,8 +7,10 @@ runs a step store and a cluster store as the workflow writes them: 128³ chunks,
 uint8 phase codes, Blosc-LZ4 uint16 cluster ids). Media: a 256³ random three-phase medium
 (``wetpath.synthetic.random_medium``, ~35 % porosity, both fluids) mirror-tiled to the requested
 size; the second step for tracking has the same solid and fluid field at a lower wetting
-saturation (a drainage step). The label stage out of core writes a cluster store as
-``label_step`` does.
+saturation (a drainage step). ``--medium`` picks the Gaussian-field scales as in
+``bench_state.py``: ``pores20`` (default; grains and pores ~20 voxels across) or ``fine`` (~6
+voxels: hundreds of small clusters, the worst case for labelling). The label stage out of core
+writes a cluster store as ``label_step`` does.
 
 Usage::
 
@@ -35,6 +37,8 @@ import numpy as np
 
 STAGES = ("lattice", "label", "cluster_measures", "overlap")
 BASE = 256
+MEDIA = {"pores20": (8.0, 10.0), "fine": (3.0, 4.0)}
+"""Grain and fluid scales (voxels) of the benchmark media."""
 
 
 def _reflect(n: int, m: int) -> np.ndarray:
@@ -43,21 +47,23 @@ def _reflect(n: int, m: int) -> np.ndarray:
     return np.resize(period, n)
 
 
-def _base(size: int, saturation_w: float) -> np.ndarray:
+def _base(size: int, saturation_w: float, medium: str) -> np.ndarray:
     from wetpath import synthetic
 
     m = min(size, BASE)
-    return synthetic.random_medium((m, m, m), porosity=0.35, saturation_w=saturation_w, seed=11)
+    grain, fluid = MEDIA[medium]
+    return synthetic.random_medium((m, m, m), porosity=0.35, saturation_w=saturation_w,
+                                   grain_scale=grain, fluid_scale=fluid, seed=11)
 
 
-def _names(name: str, size: int, as_zarr: bool) -> tuple[str, str]:
+def _names(name: str, size: int, as_zarr: bool, medium: str) -> tuple[str, str]:
     """Cache file names of a step's phase codes and cluster labels."""
     if as_zarr:
-        return f"step_{name}_{size}.zarr", f"clusters_{name}_{size}.zarr"
-    return f"{name}_{size}.npy", f"{name}_{size}_clusters.npy"
+        return f"step_{name}_{size}_{medium}.zarr", f"clusters_{name}_{size}_{medium}.zarr"
+    return f"{name}_{size}_{medium}.npy", f"{name}_{size}_{medium}_clusters.npy"
 
 
-def make_inputs(size: int, cache: Path, as_zarr: bool) -> None:
+def make_inputs(size: int, cache: Path, as_zarr: bool, medium: str = "pores20") -> None:
     """Write steps a and b (phase codes) and their cluster labels into ``cache``.
 
     Out of core they are what the workflow writes: a step store (``_store.create_step_store``,
@@ -65,9 +71,9 @@ def make_inputs(size: int, cache: Path, as_zarr: bool) -> None:
     from wetpath._clusters import label_clusters
 
     for name, sat in (("a", 0.55), ("b", 0.45)):
-        base = _base(size, sat)
+        base = _base(size, sat, medium)
         idx = _reflect(size, base.shape[0])
-        codes, clusters = (cache / n for n in _names(name, size, as_zarr))
+        codes, clusters = (cache / n for n in _names(name, size, as_zarr, medium))
         if not as_zarr:
             vol = base[np.ix_(idx, idx, idx)]
             np.save(codes, vol)
@@ -107,15 +113,16 @@ def _rss_mb(key: str = "VmHWM") -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 
 
-def run_stage(stage: str, size: int, cache: Path, kind: str, threads: int, repeat: int) -> dict:
+def run_stage(stage: str, size: int, cache: Path, kind: str, threads: int, repeat: int,
+              medium: str = "pores20") -> dict:
     """Body of one worker process: load the inputs, time the stage ``repeat`` times."""
     from wetpath._clusters import cluster_lattice_measures, label_clusters
     from wetpath._lattice import lattice_measures
     from wetpath._tracking import overlap_table
 
     as_zarr = kind == "zarr"
-    a, ca = (_open(cache / n) for n in _names("a", size, as_zarr))
-    cb = _open(cache / _names("b", size, as_zarr)[1])
+    a, ca = (_open(cache / n) for n in _names("a", size, as_zarr, medium))
+    cb = _open(cache / _names("b", size, as_zarr, medium)[1])
     tmp = Path(tempfile.mkdtemp(dir=cache))
 
     # in memory, the label stage writes into one output buffer reused across runs (as a workflow
@@ -151,7 +158,7 @@ def run_stage(stage: str, size: int, cache: Path, kind: str, threads: int, repea
         cpu.append(time.process_time() - c)
     shutil.rmtree(tmp, ignore_errors=True)
     best = int(np.argmin(times))
-    return {"stage": stage, "size": size, "source": kind, "threads": threads,
+    return {"stage": stage, "size": size, "source": kind, "medium": medium, "threads": threads,
             "seconds": times[best], "mvox_s": size**3 / times[best] / 1e6,
             "cpu_seconds": cpu[best], "mvox_cpu_s": size**3 / cpu[best] / 1e6,
             "rss_inputs_mb": rss_inputs,
@@ -190,6 +197,8 @@ def main(argv=None) -> int:
     ap.add_argument("--repeat", type=int, default=2, help="timed runs per stage (best is kept)")
     ap.add_argument("--stages", nargs="*", default=list(STAGES), choices=STAGES)
     ap.add_argument("--cache", type=Path, default=None, help="directory for generated inputs")
+    ap.add_argument("--medium", choices=sorted(MEDIA), default="pores20",
+                    help="benchmark medium (default pores20: grain/fluid scales 8/10 voxels)")
     ap.add_argument("--smoke", action="store_true", help="tiny sizes, one run (CI)")
     ap.add_argument("--worker", nargs=4, metavar=("STAGE", "SIZE", "CACHE", "KIND"),
                     help=argparse.SUPPRESS)
@@ -197,7 +206,7 @@ def main(argv=None) -> int:
     threads = args.threads or len(os.sched_getaffinity(0))
     if args.worker:
         stage, size, cache, kind = args.worker
-        res = run_stage(stage, int(size), Path(cache), kind, threads, args.repeat)
+        res = run_stage(stage, int(size), Path(cache), kind, threads, args.repeat, args.medium)
         print(json.dumps(res))
         return 0
     if args.smoke:
@@ -210,12 +219,13 @@ def main(argv=None) -> int:
     rows = []
     for size, kind in runs:
         t = time.perf_counter()
-        if not (cache / _names("b", size, kind == "zarr")[1]).exists():
-            make_inputs(size, cache, kind == "zarr")
+        if not (cache / _names("b", size, kind == "zarr", args.medium)[1]).exists():
+            make_inputs(size, cache, kind == "zarr", args.medium)
         print(f"# inputs {size}³ {kind}: {time.perf_counter() - t:.1f} s", flush=True)
         for stage in args.stages:
             cmd = [sys.executable, __file__, "--worker", stage, str(size), str(cache), kind,
-                   "--threads", str(threads), "--repeat", str(args.repeat)]
+                   "--threads", str(threads), "--repeat", str(args.repeat),
+                   "--medium", args.medium]
             out = subprocess.run(cmd, capture_output=True, text=True, env=os.environ)
             if out.returncode:
                 print(out.stderr, file=sys.stderr)
@@ -224,6 +234,7 @@ def main(argv=None) -> int:
             r = rows[-1]
             print(f"# {stage:17s} {size:5d}³ {kind:5s} {r['mvox_s']:8.1f} Mvox/s", flush=True)
     print()
+    print(f"medium: {args.medium} (grain/fluid scales {MEDIA[args.medium]})")
     print("| stage | size | source | threads | wall s | Mvox/s | CPU s | Mvox per CPU-s "
           "| RSS after inputs (MB) | peak RSS (MB) |")
     print("|---|---|---|---|---|---|---|---|---|---|")
