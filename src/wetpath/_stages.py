@@ -136,7 +136,7 @@ def measure_step(store: str | os.PathLike, clusters_store: str | os.PathLike,
     (the state with its fluid boundary moved by ±1 voxel, for the energy-balance interval) and
     ``<step>_points.csv`` (geometric contact angles at contact-line points).
     """
-    from ._energy import perturb_fluid_boundary
+    from ._energy import PerturbedView
     from ._geometric import summarise_geometric
     from ._lattice import lattice_measures
     from ._measure import cluster_tables, state_from_clusters
@@ -147,8 +147,10 @@ def measure_step(store: str | os.PathLike, clusters_store: str | os.PathLike,
     opened = open_step(store)
     h = _voxel(opened, "measure")
     step = step or opened.attrs.get("step") or Path(store).stem
-    labels = np.asarray(opened.labels[...])
-    clusters = np.asarray(open_clusters(clusters_store)[...])
+    # nothing is read whole: the lattice passes stream slabs from the stores and every mesh chunk
+    # reads its own box (core ± halo), so memory is bounded by the chunk size, not the volume
+    labels = opened.labels
+    clusters = open_clusters(clusters_store)
     lattice = lattice_measures(labels, h, threads=threads)
     # chunked meshing bounds memory (a percolating cluster's box is the whole volume); the sums
     # agree with whole-cluster meshing to ~1e-6 relative
@@ -181,8 +183,9 @@ def measure_step(store: str | os.PathLike, clusters_store: str | os.PathLike,
                            paths["points"])
     perturbed = []
     if perturb:
-        for kind, lab in zip(("dilated", "eroded"), perturb_fluid_boundary(labels), strict=True):
-            m = lattice_measures(lab, h, threads=threads)
+        for kind in ("dilated", "eroded"):
+            # perturbed slab by slab as the lattice pass reads it (equal to perturbing the whole)
+            m = lattice_measures(PerturbedView(labels, kind), h, threads=threads)
             # the ±1-voxel shift stands in for segmentation error of areas and volumes; the
             # curvature of the unperturbed state is kept (its shift, ~2/R², is negligible)
             perturbed.append({"perturbation": kind, **_scalars(m),
