@@ -303,3 +303,31 @@ def test_stored_arrays_equal_in_memory_arrays(tmp_path, monkeypatch):
     assert len(ref_geo[1]) > 0
     for a, b in zip(ref_geo, got_geo, strict=True):
         pd.testing.assert_frame_equal(b, a, check_exact=True)
+
+
+def test_chunk_grid_under_a_box_bound_meshes_least():
+    # brute force over part counts: the chosen grid keeps every box (core ± halo, as mesh_sums
+    # cuts them) under the bound and no other grid under it meshes less volume
+    import itertools
+
+    from wetpath._mesh import _chunk_ranges, _parts_within
+
+    halo, pad = 26, 6
+
+    def boxes(shape, parts):
+        ext = []
+        for n, k in zip(shape, parts, strict=True):
+            r = _chunk_ranges(n, None if k == 1 else -(-n // k), pad)
+            ext.append([min(b + halo, n + pad) - max(a - halo, -pad) for a, b in r])
+        vols = [a * b * c for a, b, c in itertools.product(*ext)]
+        return max(vols), sum(vols)
+
+    for shape, bound in (((512, 512, 512), 20_000_000), ((300, 200, 100), 3_000_000),
+                         ((1024, 1024, 1024), 20_000_000)):
+        got = _parts_within(shape, [1, 1, 1], halo, pad, bound)
+        largest, total = boxes(shape, got)
+        assert largest <= bound
+        for parts in itertools.product(range(1, 9), repeat=3):
+            big, vol = boxes(shape, parts)
+            assert big > bound or vol >= total
+    assert _parts_within((512,) * 3, [2, 2, 2], halo, pad, 20_000_000) == [2, 2, 3]

@@ -513,12 +513,14 @@ def mesh_and_angles(labels, voxel_size: float = 1.0, *,
                     sigma: float = 1.0, spacing: float = 3.0, fit_radius: float = 10.0,
                     band: tuple[float, float] | None = None, min_interface_vox2: float = 1000.0,
                     chunks: int | None = None, threads: int | None = None,
-                    boxes: np.ndarray | None = None) -> tuple[pd.DataFrame, pd.DataFrame]:
+                    boxes: np.ndarray | None = None, max_box: int | None = None
+                    ) -> tuple[pd.DataFrame, pd.DataFrame]:
     """:func:`wetpath._mesh.mesh_measures` and :func:`geometric_angles` from one meshing pass.
 
     Parameters as in :func:`geometric_angles`. ``labels`` (canonical codes) and ``clusters`` may
-    also be stored arrays (zarr, dask) read chunk by chunk, with the cluster bounding ``boxes`` of
-    :func:`wetpath._mesh.mesh_sums`; results do not depend on where the arrays live. Returns the
+    also be stored arrays (zarr, dask) read chunk by chunk, with the cluster bounding ``boxes`` and
+    the bound ``max_box`` of :func:`wetpath._mesh.mesh_sums`; results do not depend on where the
+    arrays live. Returns the
     mesh-measures table (one row per cluster) and the contact-point table.
     """
     if np.ndim(voxel_size) != 0 or not voxel_size > 0:
@@ -539,7 +541,7 @@ def mesh_and_angles(labels, voxel_size: float = 1.0, *,
     # an owned point lies up to ``spacing`` past the core; its fit reaches ``fit_radius`` further
     acc, ncl, levels = mesh_sums(lab, clusters=clusters, sigma=sigma, chunks=chunks,
                                  threads=resolve_threads(threads), contact=contact,
-                                 reach=spacing + fit_radius + 1, boxes=boxes)
+                                 reach=spacing + fit_radius + 1, boxes=boxes, max_box=max_box)
     if ncl == 0:
         return (pd.DataFrame({c: pd.Series(dtype=float) for c in MESH_COLUMNS}),
                 pd.DataFrame({c: pd.Series(dtype=float) for c in _COLUMNS}))

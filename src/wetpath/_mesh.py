@@ -1122,6 +1122,37 @@ def _chunk_ranges(n: int, size: int | None, pad: int):
     return out
 
 
+def _axis_boxes(n: int, parts: int, halo: int, pad: int) -> tuple[int, int, int]:
+    """(parts, total extent, largest extent) of the chunk boxes along one axis of length ``n``
+    cut into ``parts`` equal parts (as :func:`mesh_sums` cuts it; the part count actually made
+    may be smaller)."""
+    size = math.ceil(n / parts)
+    ranges = _chunk_ranges(n, None if parts == 1 else size, pad)
+    ext = [min(b + halo, n + pad) - max(a - halo, -pad) for a, b in ranges]
+    return len(ranges), sum(ext), max(ext)
+
+
+def _parts_within(shape, least, halo: int, pad: int, max_box: int) -> list[int]:
+    """Parts per axis (at least ``least``) that mesh the least volume, halos included, with no
+    chunk box over ``max_box`` voxels; ties go to fewer chunks. When no cut up to 32 more parts
+    per axis fits, the one with the smallest box."""
+    options = []
+    for n, k0 in zip(shape, least, strict=True):
+        n, k0 = int(n), max(int(k0), 1)
+        options.append(sorted({_axis_boxes(n, k, halo, pad)
+                               for k in range(k0, max(min(k0 + 32, n), k0) + 1)}))
+    best = None
+    for cz in options[0]:
+        for cy in options[1]:
+            for cx in options[2]:
+                box = cz[2] * cy[2] * cx[2]
+                key = (box > max_box, box if box > max_box else 0, cz[1] * cy[1] * cx[1],
+                       cz[0] * cy[0] * cx[0])
+                if best is None or key < best[0]:
+                    best = (key, [cz[0], cy[0], cx[0]])
+    return best[1]
+
+
 def _extract(arr, lo, hi, fill) -> np.ndarray:
     """Sub-array [lo, hi) of ``arr`` (may reach outside; filled with ``fill`` there).
 
@@ -1210,7 +1241,8 @@ def _check_voxel_size(voxel_size) -> float:
 
 def mesh_measures(labels, voxel_size: float = 1.0, *, clusters=None, connectivity: int = 26,
                   sigma: float = 1.0, chunks: int | tuple | None = None,
-                  threads: int | None = None, boxes: np.ndarray | None = None) -> pd.DataFrame:
+                  threads: int | None = None, boxes: np.ndarray | None = None,
+                  max_box: int | None = None) -> pd.DataFrame:
     """Mesh-based measures of every non-wetting cluster.
 
     Parameters
@@ -1238,6 +1270,8 @@ def mesh_measures(labels, voxel_size: float = 1.0, *, clusters=None, connectivit
     boxes : ndarray of int, shape (n, 6), optional
         Cluster bounding boxes (:func:`cluster_boxes`, :func:`boxes_from_table`); found by a
         streaming pass over ``clusters`` when omitted.
+    max_box : int, optional
+        Largest chunk box (core ± halo, voxels) a worker holds; see :func:`mesh_sums`.
 
     Returns
     -------
@@ -1260,7 +1294,8 @@ def mesh_measures(labels, voxel_size: float = 1.0, *, clusters=None, connectivit
     """
     h = _check_voxel_size(voxel_size)
     acc, ncl, levels = mesh_sums(labels, clusters=clusters, connectivity=connectivity,
-                                 sigma=sigma, chunks=chunks, threads=threads, boxes=boxes)
+                                 sigma=sigma, chunks=chunks, threads=threads, boxes=boxes,
+                                 max_box=max_box)
     if ncl == 0:
         return pd.DataFrame({c: pd.Series(dtype=float) for c in COLUMNS})
     return finish_mesh(acc, ncl, levels, sigma, h)
@@ -1268,7 +1303,7 @@ def mesh_measures(labels, voxel_size: float = 1.0, *, clusters=None, connectivit
 
 def mesh_sums(labels, *, clusters=None, connectivity: int = 26, sigma: float = 1.0,
               chunks: int | tuple | None = None, threads: int | None = None, contact=None,
-              reach: float = 0.0, boxes: np.ndarray | None = None
+              reach: float = 0.0, boxes: np.ndarray | None = None, max_box: int | None = None
               ) -> tuple[dict, int, np.ndarray]:
     """Per-cluster, per-box sums behind :func:`mesh_measures` (same parameters).
 
@@ -1286,6 +1321,11 @@ def mesh_sums(labels, *, clusters=None, connectivity: int = 26, sigma: float = 1
     ((n, 6) cluster bounding boxes as :func:`cluster_boxes` returns them, e.g.
     :func:`boxes_from_table` of the per-cluster lattice table) saves the pass that finds them.
     Results do not depend on where the arrays live.
+
+    ``max_box`` (voxels) bounds the box (core ± halo) that one worker holds, and with it the
+    worker's memory (~31 bytes per box voxel at the peak, in the wall distance): the number of
+    parts per axis is then chosen to mesh the least volume, halos included, with no box larger
+    (and no core edge longer than ``chunks``, if given).
 
     Returns the sums of every cluster (cluster id → list of per-box dicts), the number of clusters
     and the band levels (voxels).
@@ -1318,13 +1358,15 @@ def mesh_sums(labels, *, clusters=None, connectivity: int = 26, sigma: float = 1
     else:
         contact_box = None
     shape = np.array(labels.shape)
-    if chunks is None:
+    if chunks is None and max_box is None:
         csize = [None] * 3
     else:
         # equal parts no longer than the requested edge: 512 → 2 × 256 rather than 256 + 256,
         # 384 → 2 × 192 rather than 256 + 128 (less halo per voxel)
-        req = np.broadcast_to(np.atleast_1d(chunks), (3,)).astype(int)
+        req = np.broadcast_to(np.atleast_1d(shape if chunks is None else chunks), (3,)).astype(int)
         parts = [math.ceil(n / max(int(c), 1)) for n, c in zip(shape, req, strict=True)]
+        if max_box is not None:
+            parts = _parts_within(shape, parts, halo, pad, int(max_box))
         if math.prod(parts) < threads and math.prod(shape) >= PROCESS_MIN_VOXELS:
             # fewer chunks than workers: slabs along z so that every worker has one
             parts[0] = max(parts[0], min(threads, int(shape[0]) // (2 * halo) or 1))

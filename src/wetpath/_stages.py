@@ -25,10 +25,16 @@ __all__ = ["label_step", "measure_step", "track_step", "increment_step", "collec
 # largest chunk edge (voxels) of the mesh measures and geometric angles in the measure stage (each
 # axis is split into equal parts no longer than this): each chunk is meshed with a halo of 26
 # voxels (blur, smoothing rings, the fits' reach), so larger chunks waste less (volume meshed per
-# voxel at 512³: 2.2 with 192-voxel chunks, 1.45 with 256) but hold more memory (~25 bytes per
-# voxel of chunk and halo, ~0.75 GB at 256, per worker); a volume of fewer chunks than workers
-# is cut into one slab along z per worker (from 160³ up; smaller ones are meshed whole)
+# voxel at 512³: 2.2 with 192-voxel chunks, 1.45 with 256) but hold more memory; a volume of
+# fewer chunks than workers is cut into one slab along z per worker (from 160³ up; smaller ones
+# are meshed whole)
 MESH_CHUNKS = 256
+# largest chunk box (core ± halo, voxels) one mesh worker holds: its peak is ~31 bytes per box
+# voxel (the wall distance) over ~0.1 GB of its own, ~0.72 GB at 20 M voxels, so that the stage
+# stays under 2 GB with 2 workers whatever the volume; the parts per axis are chosen to mesh the
+# least volume under it (512³: 2 × 2 × 3 chunks, 1.55 voxels meshed per voxel; 1024³: 4 × 4 × 7,
+# 1.78; with 256³ chunks alone the boxes reach 24 M and 29 M voxels)
+MESH_BOX_VOXELS = 20_000_000
 # state keys that are tables, not numbers
 _TABLE_KEYS = ("blocks", "clusters")
 
@@ -156,7 +162,8 @@ def measure_step(store: str | os.PathLike, clusters_store: str | os.PathLike,
     # agree with whole-cluster meshing to ~1e-6 relative
     # (the geometric angles come from the same meshes)
     table, points = cluster_tables(labels, h, clusters, sigma=sigma, chunks=MESH_CHUNKS,
-                                   threads=threads, geometric=geometric)
+                                   threads=threads, geometric=geometric,
+                                   max_box=MESH_BOX_VOXELS)
     state = state_from_clusters(lattice, table)
     topo = topological_from_clusters(table)
     topo["topo_flag"] = topo.pop("flag")
