@@ -1186,26 +1186,25 @@ def cluster_boxes(clusters, *, depth: int | None = None) -> np.ndarray:
     """Bounding box of every cluster id 1..max: (n, 6) int64 rows ``z0, y0, x0, z1, y1, x1``
     (first index, one past the last); ids without voxels get an empty box that meets nothing.
 
-    Streams ``clusters`` (numpy, zarr or dask) in z-slabs of ``depth`` planes (default the stored
-    chunk depth, or 64), so a stored array is never read whole.
+    A stored array (zarr, dask) is streamed in z-slabs of ``depth`` planes (default its chunk
+    depth), so it is never read whole; a numpy array is one slab unless ``depth`` says otherwise.
     """
     from ._lattice import _Source
 
     src = _Source(clusters, name="clusters", step="mesh")
-    depth = depth or src.default_depth()
-    lo = np.zeros((0, 3), np.int64)
-    hi = np.zeros((0, 3), np.int64)
+    depth = depth or (max(src.shape[0], 1) if src.is_numpy else src.default_depth())
+    big = np.iinfo(np.int64).max // 2
+    bb = np.zeros((0, 6), np.int64)
     for z0 in range(0, src.shape[0], depth):
         objs = ndimage.find_objects(src.read(z0, z0 + depth))
-        if len(objs) > len(lo):
-            grow = len(objs) - len(lo)
-            lo = np.concatenate([lo, np.full((grow, 3), np.iinfo(np.int64).max // 2, np.int64)])
-            hi = np.concatenate([hi, np.full((grow, 3), -(10**9), np.int64)])
-        for i, o in enumerate(objs):
-            if o is not None:
-                lo[i] = np.minimum(lo[i], [o[0].start + z0, o[1].start, o[2].start])
-                hi[i] = np.maximum(hi[i], [o[0].stop + z0, o[1].stop, o[2].stop])
-    return _empty_boxes_inert(np.concatenate([lo, hi], axis=1))
+        part = np.array([[o[0].start + z0, o[1].start, o[2].start, o[0].stop + z0, o[1].stop,
+                          o[2].stop] if o is not None else [big] * 3 + [-big] * 3
+                         for o in objs], np.int64).reshape(-1, 6)
+        if len(part) > len(bb):
+            bb = np.concatenate([bb, np.tile([big] * 3 + [-big] * 3, (len(part) - len(bb), 1))])
+        bb[:len(part), :3] = np.minimum(bb[:len(part), :3], part[:, :3])
+        bb[:len(part), 3:] = np.maximum(bb[:len(part), 3:], part[:, 3:])
+    return _empty_boxes_inert(bb)
 
 
 def _empty_boxes_inert(bb: np.ndarray) -> np.ndarray:
