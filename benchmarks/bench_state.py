@@ -4,11 +4,14 @@ Stages (each (stage, size) in a fresh Python process, so that its peak resident 
 ``read`` (step store and cluster store from zarr into memory), ``lattice`` (volumes, Crofton areas,
 Euler characteristics), ``label`` (n clusters), ``cluster_lattice`` (per-cluster lattice measures),
 ``mesh`` (per-cluster mesh measures alone), ``mesh_angles`` (mesh measures and geometric
-contact-line angles from one meshing pass, as the workflow runs them), ``topological`` (angle
-from the per-cluster table, after ``measure_clusters``), ``perturb`` (±1-voxel fluid boundary and
-its two lattice passes), ``overlap`` (cluster overlap table between two states) and
-``measure_step`` (the workflow's measure stage end to end: read, all of the above but labelling
-and tracking, and the tables written).
+contact-line angles from one meshing pass), ``topological`` (angle from the per-cluster table,
+after ``measure_clusters``), ``perturb`` (±1-voxel fluid boundary and its two lattice passes),
+``overlap`` (cluster overlap table between two states): these run on the whole arrays in memory,
+read beforehand and untimed (``read`` times that reading on its own). ``measure_step`` is the
+workflow's measure stage end to end as it runs: it streams from the stores (lattice passes by
+slabs, mesh chunks read their own boxes, perturbed states slab by slab) and reads nothing whole,
+computes all of the above but labelling and tracking, and writes the tables; its peak memory is
+the stage's own, bounded by the chunk sizes rather than the volume.
 
 Media: a random three-phase medium (``wetpath.synthetic.random_medium``: ~35 % porosity, both
 fluids, many n clusters) generated at up to 256³ and mirror-tiled to the requested size. The

@@ -308,3 +308,34 @@ def test_perturb_fluid_boundary_moves_nw_boundary_only():
     assert ((eroded == SOLID) == (labels == SOLID)).all()
     with pytest.raises(WetpathError, match="voxels must be a positive integer"):
         perturb_fluid_boundary(labels, voxels=0)
+
+
+@pytest.mark.parametrize("depth", [1, 4, 7, 64])
+def test_perturbed_view_measures_equal_the_whole_perturbed_copy(tmp_path, depth):
+    # Oracle: the whole-array perturbation (itself checked against scipy.ndimage dilation in
+    # test_fast_paths). Read box by box from a zarr store, slab depths that do not divide the
+    # shape, n and w touching every array face and excluded voxels: the lattice measures of the
+    # streamed copy are exactly those of the whole copy.
+    import zarr
+
+    from wetpath._energy import PerturbedView
+    from wetpath._lattice import lattice_measures
+
+    rng = np.random.default_rng(7)
+    labels = rng.choice(np.array([0, 1, 2, 3], np.uint8), size=(23, 17, 19),
+                        p=[0.05, 0.25, 0.35, 0.35])
+    store = zarr.open_array(tmp_path / "labels.zarr", mode="w", shape=labels.shape,
+                            chunks=(5, 6, 7), dtype=np.uint8)
+    store[...] = labels
+    for kind, whole in zip(("dilated", "eroded"), perturb_fluid_boundary(labels), strict=True):
+        for source in (store, labels):
+            view = PerturbedView(source, kind)
+            np.testing.assert_array_equal(view[...], whole)
+            np.testing.assert_array_equal(view[0:1, 16:, 3:11], whole[0:1, 16:, 3:11])
+            np.testing.assert_array_equal(view[22:], whole[22:])
+        got = lattice_measures(PerturbedView(store, kind), chunks=depth, block=8, threads=2)
+        ref = lattice_measures(whole, block=8, threads=1)
+        pd.testing.assert_frame_equal(got.pop("blocks"), ref.pop("blocks"), check_exact=True)
+        assert got == ref
+    with pytest.raises(WetpathError, match="kind must be"):
+        PerturbedView(labels, "shifted")

@@ -253,3 +253,81 @@ def test_shared_blur_passes_match_scipy():
         ref = ndimage.gaussian_filter(mask.astype(np.float32), m.SOLID_BLUR, order=order,
                                       mode="nearest")[at]
         np.testing.assert_allclose(got, ref, rtol=0, atol=1e-7)
+
+
+def test_cluster_boxes_equal_find_objects():
+    # oracle: scipy.ndimage.find_objects on the whole array; slabs of 5 planes do not divide 23
+    from wetpath._mesh import cluster_boxes
+
+    rng = np.random.default_rng(3)
+    clusters = rng.choice(np.arange(9), size=(23, 11, 13), p=[0.9] + [0.0125] * 8)
+    clusters[clusters == 4] = 0                      # an id without voxels
+    got = cluster_boxes(clusters, depth=5)
+    objs = ndimage.find_objects(clusters)
+    assert len(got) == len(objs) == 8
+    for row, o in zip(got, objs, strict=True):
+        if o is None:
+            assert (row[3:] <= row[:3]).all()
+        else:
+            assert list(row) == [s.start for s in o] + [s.stop for s in o]
+
+
+def test_stored_arrays_equal_in_memory_arrays(tmp_path, monkeypatch):
+    # the chunks read their boxes from zarr stores (threads, then forked workers) and give
+    # bit-identical tables to the in-memory arrays; boxes from the lattice table change nothing
+    import pandas as pd
+    import zarr
+
+    from wetpath import _mesh
+    from wetpath._clusters import cluster_lattice_measures, label_clusters
+    from wetpath._geometric import mesh_and_angles
+    from wetpath._mesh import boxes_from_table
+
+    labels = synthetic.random_medium((64, 64, 64), seed=3, grain_scale=5, fluid_scale=6)
+    clusters, n = label_clusters(labels)
+    root = zarr.open_group(tmp_path / "state.zarr", mode="w")
+    zl = root.create_array("labels", shape=labels.shape, chunks=(32, 32, 32), dtype=np.uint8)
+    zc = root.create_array("clusters", shape=labels.shape, chunks=(32, 32, 32), dtype=np.uint16)
+    zl[...], zc[...] = labels, clusters
+    ref = mesh_measures(labels, clusters=clusters, chunks=32, threads=2)
+    assert n >= 5 and len(ref) == n
+    boxes = boxes_from_table(cluster_lattice_measures(zl, zc))
+    for kw in ({}, {"boxes": boxes}):
+        pd.testing.assert_frame_equal(mesh_measures(zl, clusters=zc, chunks=32, threads=2, **kw),
+                                      ref, check_exact=True)
+    with pytest.warns(UserWarning):
+        ref_geo = mesh_and_angles(labels, clusters=clusters, chunks=32, threads=2)
+    monkeypatch.setattr(_mesh, "PROCESS_MIN_VOXELS", 0)      # forked workers read the stores
+    with pytest.warns(UserWarning):
+        got_geo = mesh_and_angles(zl, clusters=zc, chunks=32, threads=2, boxes=boxes)
+    assert len(ref_geo[1]) > 0
+    for a, b in zip(ref_geo, got_geo, strict=True):
+        pd.testing.assert_frame_equal(b, a, check_exact=True)
+
+
+def test_chunk_grid_under_a_box_bound_meshes_least():
+    # brute force over part counts: the chosen grid keeps every box (core ± halo, as mesh_sums
+    # cuts them) under the bound and no other grid under it meshes less volume
+    import itertools
+
+    from wetpath._mesh import _chunk_ranges, _parts_within
+
+    halo, pad = 26, 6
+
+    def boxes(shape, parts):
+        ext = []
+        for n, k in zip(shape, parts, strict=True):
+            r = _chunk_ranges(n, None if k == 1 else -(-n // k), pad)
+            ext.append([min(b + halo, n + pad) - max(a - halo, -pad) for a, b in r])
+        vols = [a * b * c for a, b, c in itertools.product(*ext)]
+        return max(vols), sum(vols)
+
+    for shape, bound in (((512, 512, 512), 20_000_000), ((300, 200, 100), 3_000_000),
+                         ((1024, 1024, 1024), 20_000_000)):
+        got = _parts_within(shape, [1, 1, 1], halo, pad, bound)
+        largest, total = boxes(shape, got)
+        assert largest <= bound
+        for parts in itertools.product(range(1, 9), repeat=3):
+            big, vol = boxes(shape, parts)
+            assert big > bound or vol >= total
+    assert _parts_within((512,) * 3, [2, 2, 2], halo, pad, 20_000_000) == [2, 2, 3]

@@ -33,7 +33,8 @@ from numba import njit, prange
 from ._codes import NONWETTING, WETTING, PhaseCodes, to_canonical
 from ._errors import WetpathError
 
-__all__ = ["energy_balance_angle", "family_energy_angles", "perturb_fluid_boundary"]
+__all__ = ["energy_balance_angle", "family_energy_angles", "perturb_fluid_boundary",
+           "PerturbedView"]
 
 _STEP = "energy"
 _BLOCK_SUMS = ("volume_w", "volume_n", "area_nw", "area_ws", "area_ns")
@@ -366,6 +367,64 @@ def perturb_fluid_boundary(labels: np.ndarray, *, codes: PhaseCodes | Mapping | 
         _perturb_once(np.ascontiguousarray(lab), dilated, eroded)
         return dilated, eroded
     return _perturb_reference(lab, int(voxels))
+
+
+class PerturbedView:
+    """A label array with its fluid boundary moved by one voxel, computed box by box on reading.
+
+    ``view[box]`` reads the box grown by one voxel on every side from ``labels`` (numpy, zarr or
+    dask; canonical codes), moves the boundary as :func:`perturb_fluid_boundary` does with
+    ``voxels=1`` and returns the box: exactly the same voxels as slicing the whole perturbed copy
+    (a voxel's move depends only on its six neighbours, and the array border is kept where the
+    grown box is clipped by it). Streaming passes such as
+    :func:`wetpath._lattice.lattice_measures` read it slab by slab, so the perturbed states are
+    measured without a whole copy in memory.
+
+    Parameters
+    ----------
+    labels : array, shape (z, y, x)
+        Canonical phase codes (uint8).
+    kind : {"dilated", "eroded"}
+        The n phase grown into w, or shrunk.
+
+    Notes
+    -----
+    Reading uses the compiled OpenMP-parallel kernel: read it from the parent process's threads,
+    never in forked workers (see :mod:`wetpath._parallel`).
+    """
+
+    def __init__(self, labels, kind: str):
+        if kind not in ("dilated", "eroded"):
+            raise WetpathError(f"kind must be 'dilated' or 'eroded', got {kind!r}", step=_STEP)
+        if len(getattr(labels, "shape", ())) != 3:
+            raise WetpathError(f"labels must be 3-D (z, y, x), got shape "
+                               f"{getattr(labels, 'shape', None)}", step=_STEP)
+        self.labels, self.kind = labels, kind
+        self.shape = tuple(int(n) for n in labels.shape)
+        self.dtype = np.dtype(np.uint8)
+        chunks = getattr(labels, "chunks", None)      # zarr: slab passes follow the stored chunks
+        self.chunks = tuple(int(c) for c in chunks) if chunks is not None and len(chunks) == 3 \
+            and all(np.isscalar(c) for c in chunks) else None
+
+    def __getitem__(self, key) -> np.ndarray:
+        key = key if isinstance(key, tuple) else (key,)
+        if Ellipsis in key:
+            at = key.index(Ellipsis)
+            key = key[:at] + (slice(None),) * (4 - len(key)) + key[at + 1:]
+        key = key + (slice(None),) * (3 - len(key))
+        if len(key) != 3 or not all(isinstance(k, slice) and k.step in (None, 1) for k in key):
+            raise WetpathError("a perturbed view is read by boxes of unit-step slices",
+                               step=_STEP)
+        box = [k.indices(n)[:2] for k, n in zip(key, self.shape, strict=True)]
+        grown = tuple(slice(max(a - 1, 0), min(max(b, a) + 1, n))
+                      for (a, b), n in zip(box, self.shape, strict=True))
+        lab = np.ascontiguousarray(np.asarray(self.labels[grown]), dtype=np.uint8)
+        dilated, eroded = np.empty_like(lab), np.empty_like(lab)
+        if lab.size:
+            _perturb_once(lab, dilated, eroded)
+        out = dilated if self.kind == "dilated" else eroded
+        return out[tuple(slice(a - g.start, max(b, a) - g.start)
+                         for (a, b), g in zip(box, grown, strict=True))]
 
 
 @njit(cache=True, nogil=True, parallel=True)

@@ -53,7 +53,8 @@ from scipy.spatial import cKDTree
 from ._codes import NONWETTING, SOLID, WETTING, PhaseCodes, to_canonical
 from ._errors import WetpathError
 from ._lattice import resolve_threads
-from ._mesh import finish_mesh, mesh_measures, mesh_sums
+from ._mesh import COLUMNS as MESH_COLUMNS
+from ._mesh import _stored, finish_mesh, mesh_sums
 
 __all__ = ["geometric_angles", "summarise_geometric"]
 
@@ -513,28 +514,33 @@ def geometric_angles(labels: np.ndarray, voxel_size: float = 1.0, *,
                            threads=threads)[1]
 
 
-def mesh_and_angles(labels: np.ndarray, voxel_size: float = 1.0, *,
-                    codes: PhaseCodes | dict | None = None, clusters: np.ndarray | None = None,
+def mesh_and_angles(labels, voxel_size: float = 1.0, *,
+                    codes: PhaseCodes | dict | None = None, clusters=None,
                     sigma: float = 1.0, spacing: float = 3.0, fit_radius: float = 10.0,
                     band: tuple[float, float] | None = None, min_interface_vox2: float = 1000.0,
-                    chunks: int | None = None, threads: int | None = None
+                    chunks: int | None = None, threads: int | None = None,
+                    boxes: np.ndarray | None = None, max_box: int | None = None
                     ) -> tuple[pd.DataFrame, pd.DataFrame]:
     """:func:`wetpath._mesh.mesh_measures` and :func:`geometric_angles` from one meshing pass.
 
-    Parameters as in :func:`geometric_angles`. Returns the mesh-measures table (one row per
-    cluster) and the contact-point table.
+    Parameters as in :func:`geometric_angles`. ``labels`` (canonical codes) and ``clusters`` may
+    also be stored arrays (zarr, dask) read chunk by chunk, with the cluster bounding ``boxes`` and
+    the bound ``max_box`` of :func:`wetpath._mesh.mesh_sums`; results do not depend on where the
+    arrays live. Returns the
+    mesh-measures table (one row per cluster) and the contact-point table.
     """
     if np.ndim(voxel_size) != 0 or not voxel_size > 0:
         raise WetpathError(f"voxel_size must be one positive number (isotropic voxels), got "
                            f"{voxel_size!r}", step=_STEP)
-    lab = to_canonical(labels, codes, step=_STEP)
-    if lab.ndim != 3:
+    stored = clusters is not None and codes is None and _stored(labels)
+    lab = labels if stored else to_canonical(labels, codes, step=_STEP)
+    if len(lab.shape) != 3:
         raise WetpathError(f"labels must be a 3D volume, got shape {lab.shape}", step=_STEP)
     if clusters is None:
         clusters, _ = ndimage.label(lab == NONWETTING, structure=np.ones((3, 3, 3), bool))
-    elif np.shape(clusters) != lab.shape:
-        raise WetpathError(f"clusters has shape {np.shape(clusters)} but labels {lab.shape}",
-                           step=_STEP)
+    elif tuple(np.shape(clusters)) != tuple(lab.shape):
+        raise WetpathError(f"clusters has shape {tuple(np.shape(clusters))} but labels "
+                           f"{tuple(lab.shape)}", step=_STEP)
     band = (2.5 * sigma, 9.0) if band is None else band
     contact = functools.partial(box_contact_angles, sigma=sigma, spacing=spacing,
                                 fit_radius=fit_radius, band=band)
@@ -544,9 +550,10 @@ def mesh_and_angles(labels: np.ndarray, voxel_size: float = 1.0, *,
     acc, ncl, levels = mesh_sums(lab, clusters=clusters, sigma=sigma, chunks=chunks,
                                  threads=resolve_threads(threads), contact=contact,
                                  reach=fit_radius + 1 + (0 if align > 1 else spacing),
-                                 context=band[0] + _plane_radius(sigma) + 3, align=align)
+                                 context=band[0] + _plane_radius(sigma) + 3, align=align,
+                                 boxes=boxes, max_box=max_box)
     if ncl == 0:
-        return (mesh_measures(lab, voxel_size, clusters=clusters, sigma=sigma),
+        return (pd.DataFrame({c: pd.Series(dtype=float) for c in MESH_COLUMNS}),
                 pd.DataFrame({c: pd.Series(dtype=float) for c in _COLUMNS}))
     table = finish_mesh(acc, ncl, levels, sigma, float(voxel_size))
     frames = [_cluster_table(_cluster_points(acc.get(k, [])), k, voxel_size, min_interface_vox2)

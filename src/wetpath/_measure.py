@@ -86,24 +86,33 @@ def measure_clusters(labels, voxel_size: float = 1.0, *, codes: PhaseCodes | Map
     return cluster_tables(labels, h, clusters, sigma=sigma, chunks=chunks, threads=threads)[0]
 
 
-def cluster_tables(labels: np.ndarray, voxel_size: float, clusters: np.ndarray, *,
-                   sigma: float = 1.0, chunks: int | None = None, threads: int | None = None,
-                   geometric: bool = False) -> tuple[pd.DataFrame, pd.DataFrame | None]:
+def cluster_tables(labels, voxel_size: float, clusters, *, sigma: float = 1.0,
+                   chunks: int | None = None, threads: int | None = None,
+                   geometric: bool = False, max_box: int | None = None
+                   ) -> tuple[pd.DataFrame, pd.DataFrame | None]:
     """The per-cluster table of :func:`measure_clusters` (canonical labels, given clusters) and,
     with ``geometric``, the contact-point table of :func:`wetpath.geometric_angles` from the same
-    meshes (one meshing pass instead of two)."""
+    meshes (one meshing pass instead of two).
+
+    ``labels`` and ``clusters`` may be numpy arrays or stored arrays (zarr, dask): the lattice pass
+    streams slabs, and the mesh chunks read only their boxes (the cluster bounding boxes come from
+    the lattice table), so a stored volume is never read whole. ``max_box`` bounds each mesh
+    worker's chunk box (voxels; see :func:`wetpath._mesh.mesh_sums`).
+    """
     from ._clusters import cluster_lattice_measures
     from ._geometric import mesh_and_angles
-    from ._mesh import mesh_measures
+    from ._mesh import boxes_from_table, mesh_measures
 
-    lat = cluster_lattice_measures(labels, clusters, voxel_size)
+    lat = cluster_lattice_measures(labels, clusters, voxel_size, threads=threads)
+    boxes = boxes_from_table(lat)
     points = None
     if geometric:
         mesh, points = mesh_and_angles(labels, voxel_size, clusters=clusters, sigma=sigma,
-                                       chunks=chunks, threads=threads)
+                                       chunks=chunks, threads=threads, boxes=boxes,
+                                       max_box=max_box)
     else:
         mesh = mesh_measures(labels, voxel_size, clusters=clusters, sigma=sigma, chunks=chunks,
-                             threads=threads)
+                             threads=threads, boxes=boxes, max_box=max_box)
     return lat.merge(mesh, on="cluster", how="left", suffixes=("", "_mesh_dup")), points
 
 

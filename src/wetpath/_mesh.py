@@ -1508,16 +1508,109 @@ def _chunk_ranges(n: int, size: int | None, pad: int):
     return out
 
 
-def _extract(arr: np.ndarray, lo, hi, fill) -> np.ndarray:
-    """Sub-array [lo, hi) of ``arr`` (may reach outside; filled with ``fill`` there)."""
+def _axis_boxes(n: int, parts: int, halo: int, pad: int) -> tuple[int, int, int]:
+    """(parts, total extent, largest extent) of the chunk boxes along one axis of length ``n``
+    cut into ``parts`` equal parts (as :func:`mesh_sums` cuts it; the part count actually made
+    may be smaller)."""
+    size = math.ceil(n / parts)
+    ranges = _chunk_ranges(n, None if parts == 1 else size, pad)
+    ext = [min(b + halo, n + pad) - max(a - halo, -pad) for a, b in ranges]
+    return len(ranges), sum(ext), max(ext)
+
+
+def _parts_within(shape, least, halo: int, pad: int, max_box: int) -> list[int]:
+    """Parts per axis (at least ``least``) that mesh the least volume, halos included, with no
+    chunk box over ``max_box`` voxels; ties go to fewer chunks. When no cut up to 32 more parts
+    per axis fits, the one with the smallest box."""
+    options = []
+    for n, k0 in zip(shape, least, strict=True):
+        n, k0 = int(n), max(int(k0), 1)
+        options.append(sorted({_axis_boxes(n, k, halo, pad)
+                               for k in range(k0, max(min(k0 + 32, n), k0) + 1)}))
+    best = None
+    for cz in options[0]:
+        for cy in options[1]:
+            for cx in options[2]:
+                box = cz[2] * cy[2] * cx[2]
+                key = (box > max_box, box if box > max_box else 0, cz[1] * cy[1] * cx[1],
+                       cz[0] * cy[0] * cx[0])
+                if best is None or key < best[0]:
+                    best = (key, [cz[0], cy[0], cx[0]])
+    return best[1]
+
+
+def _extract(arr, lo, hi, fill) -> np.ndarray:
+    """Sub-array [lo, hi) of ``arr`` (may reach outside; filled with ``fill`` there).
+
+    ``arr`` is a numpy array or any array that :class:`wetpath._lattice._Source` reads (zarr,
+    dask): only the box is read, a zarr array decodes straight into the result.
+    """
     shape = tuple(int(h - l) for l, h in zip(lo, hi, strict=True))
     out = np.full(shape, fill, arr.dtype)
     src = tuple(slice(max(int(l), 0), min(int(h), n)) for l, h, n in zip(lo, hi, arr.shape,
                                                                           strict=True))
     dst = tuple(slice(s.start - int(l), s.stop - int(l)) for s, l in zip(src, lo, strict=True))
     if all(s.stop > s.start for s in src):
-        out[dst] = arr[src]
+        if isinstance(arr, np.ndarray):
+            out[dst] = arr[src]
+        else:
+            from ._lattice import _Source
+
+            _Source(arr, step="mesh").read_into([s.start for s in src], [s.stop for s in src],
+                                                out[dst])
     return out
+
+
+def _stored(arr) -> bool:
+    """An array read box by box (zarr, dask or any array-like with ``shape``, ``dtype`` and
+    slicing) rather than held in memory."""
+    return (not isinstance(arr, np.ndarray) and hasattr(arr, "shape") and hasattr(arr, "dtype")
+            and hasattr(arr, "__getitem__"))
+
+
+def cluster_boxes(clusters, *, depth: int | None = None) -> np.ndarray:
+    """Bounding box of every cluster id 1..max: (n, 6) int64 rows ``z0, y0, x0, z1, y1, x1``
+    (first index, one past the last); ids without voxels get an empty box that meets nothing.
+
+    A stored array (zarr, dask) is streamed in z-slabs of ``depth`` planes (default its chunk
+    depth), so it is never read whole; a numpy array is one slab unless ``depth`` says otherwise.
+    """
+    from ._lattice import _Source
+
+    src = _Source(clusters, name="clusters", step="mesh")
+    depth = depth or (max(src.shape[0], 1) if src.is_numpy else src.default_depth())
+    big = np.iinfo(np.int64).max // 2
+    bb = np.zeros((0, 6), np.int64)
+    for z0 in range(0, src.shape[0], depth):
+        objs = ndimage.find_objects(src.read(z0, z0 + depth))
+        part = np.array([[o[0].start + z0, o[1].start, o[2].start, o[0].stop + z0, o[1].stop,
+                          o[2].stop] if o is not None else [big] * 3 + [-big] * 3
+                         for o in objs], np.int64).reshape(-1, 6)
+        if len(part) > len(bb):
+            bb = np.concatenate([bb, np.tile([big] * 3 + [-big] * 3, (len(part) - len(bb), 1))])
+        bb[:len(part), :3] = np.minimum(bb[:len(part), :3], part[:, :3])
+        bb[:len(part), 3:] = np.maximum(bb[:len(part), 3:], part[:, 3:])
+    return _empty_boxes_inert(bb)
+
+
+def _empty_boxes_inert(bb: np.ndarray) -> np.ndarray:
+    """Rows with no voxels (hi ≤ lo) become the box that meets no chunk."""
+    bb = np.array(bb, dtype=np.int64).reshape(-1, 6)
+    empty = np.any(bb[:, 3:] <= bb[:, :3], axis=1)
+    bb[empty] = [0, 0, 0, -(10**9), -(10**9), -(10**9)]
+    return bb
+
+
+def boxes_from_table(table: pd.DataFrame) -> np.ndarray:
+    """:func:`cluster_boxes` from a per-cluster table with ``cluster`` and ``bbox_z0..bbox_x1``
+    columns (:func:`wetpath._clusters.cluster_lattice_measures`), without reading the array."""
+    ids = table["cluster"].to_numpy(np.int64)
+    n = int(ids.max()) if len(ids) else 0
+    bb = np.zeros((n, 6), np.int64)
+    cols = [f"bbox_{a}{e}" for e in "01" for a in "zyx"]
+    if n:
+        bb[ids - 1] = table[cols].to_numpy(np.int64)
+    return _empty_boxes_inert(bb)
 
 
 def _check_voxel_size(voxel_size) -> float:
@@ -1531,16 +1624,17 @@ def _check_voxel_size(voxel_size) -> float:
     return float(vs[0])
 
 
-def mesh_measures(labels: np.ndarray, voxel_size: float = 1.0, *,
-                  clusters: np.ndarray | None = None, connectivity: int = 26,
+def mesh_measures(labels, voxel_size: float = 1.0, *, clusters=None, connectivity: int = 26,
                   sigma: float = 1.0, chunks: int | tuple | None = None,
-                  threads: int | None = None) -> pd.DataFrame:
+                  threads: int | None = None, boxes: np.ndarray | None = None,
+                  max_box: int | None = None) -> pd.DataFrame:
     """Mesh-based measures of every non-wetting cluster.
 
     Parameters
     ----------
     labels : ndarray of uint8, shape (z, y, x)
-        Canonical phase codes (0 excluded, 1 solid, 2 wetting, 3 non-wetting).
+        Canonical phase codes (0 excluded, 1 solid, 2 wetting, 3 non-wetting); with ``clusters``
+        given, also a stored array (zarr, dask) read chunk by chunk (see :func:`mesh_sums`).
     voxel_size : float
         Edge length of a voxel; lengths are reported in its unit.
     clusters : ndarray of int, optional
@@ -1558,6 +1652,11 @@ def mesh_measures(labels: np.ndarray, voxel_size: float = 1.0, *,
     threads : int, optional
         Worker threads over chunks (or over clusters when ``chunks`` is None) and threads of the
         compiled distance transform (None: all cores).
+    boxes : ndarray of int, shape (n, 6), optional
+        Cluster bounding boxes (:func:`cluster_boxes`, :func:`boxes_from_table`); found by a
+        streaming pass over ``clusters`` when omitted.
+    max_box : int, optional
+        Largest chunk box (core ± halo, voxels) a worker holds; see :func:`mesh_sums`.
 
     Returns
     -------
@@ -1580,15 +1679,17 @@ def mesh_measures(labels: np.ndarray, voxel_size: float = 1.0, *,
     """
     h = _check_voxel_size(voxel_size)
     acc, ncl, levels = mesh_sums(labels, clusters=clusters, connectivity=connectivity,
-                                 sigma=sigma, chunks=chunks, threads=threads)
+                                 sigma=sigma, chunks=chunks, threads=threads, boxes=boxes,
+                                 max_box=max_box)
     if ncl == 0:
         return pd.DataFrame({c: pd.Series(dtype=float) for c in COLUMNS})
     return finish_mesh(acc, ncl, levels, sigma, h)
 
 
-def mesh_sums(labels: np.ndarray, *, clusters: np.ndarray | None = None, connectivity: int = 26,
-              sigma: float = 1.0, chunks: int | tuple | None = None, threads: int | None = None,
-              contact=None, reach: float = 0.0, context: float = 0.0, align: int = 1
+def mesh_sums(labels, *, clusters=None, connectivity: int = 26, sigma: float = 1.0,
+              chunks: int | tuple | None = None, threads: int | None = None, contact=None,
+              reach: float = 0.0, context: float = 0.0, align: int = 1,
+              boxes: np.ndarray | None = None, max_box: int | None = None
               ) -> tuple[dict, int, np.ndarray]:
     """Per-cluster, per-box sums behind :func:`mesh_measures` (same parameters).
 
@@ -1603,11 +1704,24 @@ def mesh_sums(labels: np.ndarray, *, clusters: np.ndarray | None = None, connect
     fall on multiples of ``align`` voxels (chunk edges are rounded up to them), so that a callback
     that owns its elements by ``align``-voxel cells finds every owned element inside the core.
 
+    ``labels`` and ``clusters`` may be stored arrays (zarr, dask, or any array with ``shape``,
+    ``dtype`` and slicing): each chunk then reads only its box (core ± halo) from them, in the
+    worker that meshes it, so memory is bounded by the chunk size, not the volume. ``boxes``
+    ((n, 6) cluster bounding boxes as :func:`cluster_boxes` returns them, e.g.
+    :func:`boxes_from_table` of the per-cluster lattice table) saves the pass that finds them.
+    Results do not depend on where the arrays live.
+
+    ``max_box`` (voxels) bounds the box (core ± halo) that one worker holds, and with it the
+    worker's memory (~31 bytes per box voxel at the peak, in the wall distance): the number of
+    parts per axis is then chosen to mesh the least volume, halos included, with no box larger
+    (and no core edge longer than ``chunks``, if given).
+
     Returns the sums of every cluster (cluster id → list of per-box dicts), the number of clusters
     and the band levels (voxels).
     """
-    labels = np.asarray(labels)
-    if labels.ndim != 3:
+    if clusters is None or not _stored(labels):
+        labels = np.asarray(labels[...] if _stored(labels) else labels)
+    if len(labels.shape) != 3:
         raise WetpathError(f"labels must be 3-D (z, y, x), got shape {labels.shape}", step="mesh")
     if clusters is None:
         structure = {6: 1, 18: 2, 26: 3}.get(connectivity)
@@ -1615,11 +1729,13 @@ def mesh_sums(labels: np.ndarray, *, clusters: np.ndarray | None = None, connect
             raise WetpathError(f"connectivity must be 6, 18 or 26, got {connectivity}", step="mesh")
         clusters, _ = ndimage.label(labels == NONWETTING,
                                     ndimage.generate_binary_structure(3, structure))
-    clusters = np.asarray(clusters)
-    if clusters.shape != labels.shape:
-        raise WetpathError(f"clusters shape {clusters.shape} differs from labels {labels.shape}",
-                           step="mesh")
-    ncl = int(clusters.max()) if clusters.size else 0
+    if not _stored(clusters):
+        clusters = np.asarray(clusters)
+    if tuple(clusters.shape) != tuple(labels.shape):
+        raise WetpathError(f"clusters shape {tuple(clusters.shape)} differs from labels "
+                           f"{tuple(labels.shape)}", step="mesh")
+    bb = cluster_boxes(clusters) if boxes is None else _empty_boxes_inert(boxes)
+    ncl = len(bb)
     levels = band_levels(sigma)
     if ncl == 0:
         return {}, 0, levels
@@ -1631,28 +1747,27 @@ def mesh_sums(labels: np.ndarray, *, clusters: np.ndarray | None = None, connect
     else:
         contact_box = None
     shape = np.array(labels.shape)
-    if chunks is None:
+    if chunks is None and max_box is None:
         csize = [None] * 3
     else:
         # equal parts no longer than the requested edge: 512 → 2 × 256 rather than 256 + 256,
         # 384 → 2 × 192 rather than 256 + 128 (less halo per voxel)
-        req = np.broadcast_to(np.atleast_1d(chunks), (3,)).astype(int)
+        req = np.broadcast_to(np.atleast_1d(shape if chunks is None else chunks), (3,)).astype(int)
         parts = [math.ceil(n / max(int(c), 1)) for n, c in zip(shape, req, strict=True)]
-        if math.prod(parts) < threads and labels.size >= PROCESS_MIN_VOXELS:
+        if max_box is not None:
+            parts = _parts_within(shape, parts, halo, pad, int(max_box))
+        if math.prod(parts) < threads and math.prod(shape) >= PROCESS_MIN_VOXELS:
             # fewer chunks than workers: slabs along z so that every worker has one
             parts[0] = max(parts[0], min(threads, int(shape[0]) // (2 * halo) or 1))
         csize = [int(math.ceil(math.ceil(n / k) / align)) * align
                  for n, k in zip(shape, parts, strict=True)]
     ranges = [_chunk_ranges(int(n), s, pad) for n, s in zip(shape, csize, strict=True)]
-    objs = ndimage.find_objects(clusters)
-    bb = np.array([[s.start for s in o] + [s.stop for s in o] if o is not None
-                   else [0, 0, 0, -10**9, -10**9, -10**9] for o in objs], dtype=np.int64)
     key_dims = shape + 2 * pad + 2
-    boxes = [(np.array([rz[0], ry[0], rx[0]]), np.array([rz[1], ry[1], rx[1]]))
+    chunk_boxes = [(np.array([rz[0], ry[0], rx[0]]), np.array([rz[1], ry[1], rx[1]]))
              for rz in ranges[0] for ry in ranges[1] for rx in ranges[2]]
 
     ctx = _ChunkContext(bb, sigma, pad, halo, levels, key_dims, contact_box,
-                        threads if len(boxes) == 1 else 1, int(math.ceil(reach)),
+                        threads if len(chunk_boxes) == 1 else 1, int(math.ceil(reach)),
                         _margin(sigma, context))
     acc: dict[int, list] = {}
 
@@ -1661,18 +1776,19 @@ def mesh_sums(labels: np.ndarray, *, clusters: np.ndarray | None = None, connect
             acc.setdefault(int(cid), []).append(r)
 
     if threads == 1:
-        for box in boxes:
+        for box in chunk_boxes:
             collect(_chunk_sums(labels, clusters, *box, ctx))
-    elif len(boxes) == 1:                  # whole clusters: threads over clusters
+    elif len(chunk_boxes) == 1:            # whole clusters: threads over clusters
         with ThreadPoolExecutor(threads) as pool:
-            collect(_chunk_sums(labels, clusters, *boxes[0], ctx, pool))
-    elif labels.size >= PROCESS_MIN_VOXELS:  # chunks in worker processes (no shared GIL)
+            collect(_chunk_sums(labels, clusters, *chunk_boxes[0], ctx, pool))
+    elif math.prod(shape) >= PROCESS_MIN_VOXELS:  # chunks in forked workers (no shared GIL)
         for part in map_forked(_chunk_sums, [labels, clusters],
-                               [(*box, ctx) for box in boxes], threads):
+                               [(*box, ctx) for box in chunk_boxes], threads):
             collect(part)
     else:                                  # chunks on threads, ≤ ``threads`` in memory
         with ThreadPoolExecutor(threads) as pool:
-            for part in pool.map(lambda box: _chunk_sums(labels, clusters, *box, ctx), boxes):
+            for part in pool.map(lambda box: _chunk_sums(labels, clusters, *box, ctx),
+                                 chunk_boxes):
                 collect(part)
     return acc, ncl, levels
 

@@ -25,10 +25,16 @@ __all__ = ["label_step", "measure_step", "track_step", "increment_step", "collec
 # largest chunk edge (voxels) of the mesh measures and geometric angles in the measure stage (each
 # axis is split into equal parts no longer than this): each chunk is meshed with a halo of 26
 # voxels (blur, smoothing rings, the fits' reach), so larger chunks waste less (volume meshed per
-# voxel at 512³: 2.2 with 192-voxel chunks, 1.45 with 256) but hold more memory (~25 bytes per
-# voxel of chunk and halo, ~0.75 GB at 256, per worker); a volume of fewer chunks than workers
-# is cut into one slab along z per worker (from 160³ up; smaller ones are meshed whole)
+# voxel at 512³: 2.2 with 192-voxel chunks, 1.45 with 256) but hold more memory; a volume of
+# fewer chunks than workers is cut into one slab along z per worker (from 160³ up; smaller ones
+# are meshed whole)
 MESH_CHUNKS = 256
+# largest chunk box (core ± halo, voxels) one mesh worker holds: its peak is ~31 bytes per box
+# voxel (the wall distance) over ~0.1 GB of its own, ~0.72 GB at 20 M voxels, so that the stage
+# stays under 2 GB with 2 workers whatever the volume; the parts per axis are chosen to mesh the
+# least volume under it (512³: 2 × 2 × 3 chunks, 1.55 voxels meshed per voxel; 1024³: 4 × 4 × 7,
+# 1.78; with 256³ chunks alone the boxes reach 24 M and 29 M voxels)
+MESH_BOX_VOXELS = 20_000_000
 # state keys that are tables, not numbers
 _TABLE_KEYS = ("blocks", "clusters")
 
@@ -136,7 +142,7 @@ def measure_step(store: str | os.PathLike, clusters_store: str | os.PathLike,
     (the state with its fluid boundary moved by ±1 voxel, for the energy-balance interval) and
     ``<step>_points.csv`` (geometric contact angles at contact-line points).
     """
-    from ._energy import perturb_fluid_boundary
+    from ._energy import PerturbedView
     from ._geometric import summarise_geometric
     from ._lattice import lattice_measures
     from ._measure import cluster_tables, state_from_clusters
@@ -147,14 +153,17 @@ def measure_step(store: str | os.PathLike, clusters_store: str | os.PathLike,
     opened = open_step(store)
     h = _voxel(opened, "measure")
     step = step or opened.attrs.get("step") or Path(store).stem
-    labels = np.asarray(opened.labels[...])
-    clusters = np.asarray(open_clusters(clusters_store)[...])
+    # nothing is read whole: the lattice passes stream slabs from the stores and every mesh chunk
+    # reads its own box (core ± halo), so memory is bounded by the chunk size, not the volume
+    labels = opened.labels
+    clusters = open_clusters(clusters_store)
     lattice = lattice_measures(labels, h, threads=threads)
     # chunked meshing bounds memory (a percolating cluster's box is the whole volume); the sums
     # agree with whole-cluster meshing to ~1e-6 relative
     # (the geometric angles come from the same meshes)
     table, points = cluster_tables(labels, h, clusters, sigma=sigma, chunks=MESH_CHUNKS,
-                                   threads=threads, geometric=geometric)
+                                   threads=threads, geometric=geometric,
+                                   max_box=MESH_BOX_VOXELS)
     state = state_from_clusters(lattice, table)
     topo = topological_from_clusters(table)
     topo["topo_flag"] = topo.pop("flag")
@@ -181,8 +190,9 @@ def measure_step(store: str | os.PathLike, clusters_store: str | os.PathLike,
                            paths["points"])
     perturbed = []
     if perturb:
-        for kind, lab in zip(("dilated", "eroded"), perturb_fluid_boundary(labels), strict=True):
-            m = lattice_measures(lab, h, threads=threads)
+        for kind in ("dilated", "eroded"):
+            # perturbed slab by slab as the lattice pass reads it (equal to perturbing the whole)
+            m = lattice_measures(PerturbedView(labels, kind), h, threads=threads)
             # the ±1-voxel shift stands in for segmentation error of areas and volumes; the
             # curvature of the unperturbed state is kept (its shift, ~2/R², is negligible)
             perturbed.append({"perturbation": kind, **_scalars(m),
