@@ -609,7 +609,8 @@ def wall_distance(solid: np.ndarray, clip: float, pore: np.ndarray | None = None
     big = (clip + 2.0) ** 2 + 1.0
     d2, idx = nearest_feature(bnd, clip + 2.0, threads)
     out = _plane_distance(d2, idx, solid, bcoord, bnormal, bheight, big, float(clip))
-    return gaussian_blur(out, 1.0, nearest=True)
+    del d2, idx, bnd, pore        # peak memory of a chunk's worker: free before the blur
+    return gaussian_blur(out, 1.0, nearest=True, overwrite=True)
 
 
 # --------------------------------------------------------------------------------------------------
@@ -1103,19 +1104,27 @@ def _blur_pass(src, dst, flags, w, axis, nearest):  # pragma: no cover
     flags[...] = out_flags
 
 
-def gaussian_blur(arr: np.ndarray, sigma: float, *, nearest: bool) -> np.ndarray:
+def gaussian_blur(arr: np.ndarray, sigma: float, *, nearest: bool,
+                  overwrite: bool = False) -> np.ndarray:
     """Gaussian blur (σ voxels, radius 4σ) of a 3-D array as float32: passes along z, y, x of
     :func:`_blur_pass`, equal bit for bit to ``ndimage.gaussian_filter(arr.astype(np.float32),
     sigma, mode="nearest" if nearest else "constant")`` (its test oracle). Without ``nearest``,
-    rows far from any non-zero voxel cost no sums: a cluster's box is mostly empty."""
+    rows far from any non-zero voxel cost no sums: a cluster's box is mostly empty. With
+    ``overwrite``, a C-contiguous float32 ``arr`` serves as one of the two pass buffers (its
+    content is lost; one array less in memory)."""
     x = np.arange(-int(4.0 * sigma + 0.5), int(4.0 * sigma + 0.5) + 1)
     w = np.exp(-0.5 / sigma**2 * x**2)
     w = w / w.sum()
     a = np.ascontiguousarray(arr)
     flags = a.reshape(a.shape[0], a.shape[1], -1).any(axis=2) if not nearest else \
         np.ones(a.shape[:2], np.bool_)
-    out = np.empty(a.shape, np.float32)
     tmp = np.empty(a.shape, np.float32)
+    if overwrite and a is arr and a.dtype == np.float32:
+        _blur_pass(a, tmp, flags, w, 0, nearest)
+        _blur_pass(tmp, a, flags, w, 1, nearest)
+        _blur_pass(a, tmp, flags, w, 2, nearest)
+        return tmp
+    out = np.empty(a.shape, np.float32)
     _blur_pass(a, out, flags, w, 0, nearest)
     _blur_pass(out, tmp, flags, w, 1, nearest)
     _blur_pass(tmp, out, flags, w, 2, nearest)
