@@ -337,10 +337,10 @@ def nearest_feature(feature: np.ndarray, cap: float,
 @njit(cache=True, nogil=True)
 def _plane_distance(d2, idx, solid, bcoord, bnormal, bheight, big, clip):  # pragma: no cover
     """Signed distance of every voxel to the tangent plane of its nearest solid-boundary voxel b:
-    (x − b)·ν_b + h_b, clipped to ±clip (float32); ``idx`` holds b's rank, which indexes
-    ``bcoord``, ``bnormal`` and ``bheight``."""
+    (x − b)·ν_b + h_b, clipped to ±clip (float32), written over the squared distances ``d2``
+    (returned); ``idx`` holds b's rank, which indexes ``bcoord``, ``bnormal`` and ``bheight``."""
     nz, ny, nx = solid.shape
-    out = np.empty((nz, ny, nx), np.float32)
+    out = d2
     for i in range(nz):
         for j in range(ny):
             for k in range(nx):
@@ -1444,6 +1444,8 @@ def _cluster_box_sums(lab, clu, cid, sd, lo, own_lo, own_hi, sigma, levels, key_
     g0 = verts0 + lo
     v_own, f_own, e_own = _owned_kernel(g0, faces, edges, own_lo.astype(np.float64),
                                         own_hi.astype(np.float64))
+    del verts0                    # (arrays are dropped after their last use: a chunk's worker
+                                  # holds the percolating cluster's mesh at its memory peak)
 
     # wall distance and solid normal at the vertices
     # (central differences of the interpolated distance, step 1 voxel)
@@ -1453,6 +1455,7 @@ def _cluster_box_sums(lab, clu, cid, sd, lo, own_lo, own_hi, sigma, levels, key_
     # sorted corner distances, the flux of ∇d through it
     _, border, ans, anw, v_bad, d3, dface, flux = _face_kernel(
         verts, faces, fnorm, farea, lab, f_own, d, grad)
+    del grad
     res["Ans_raw"], res["Anw_raw"] = ans, anw
     good_f = f_own & ~border
     good_v = v_own & ~v_bad
@@ -1463,9 +1466,12 @@ def _cluster_box_sums(lab, clu, cid, sd, lo, own_lo, own_hi, sigma, levels, key_
     res["A"], lid, res["K"] = _band_kernel(d3, farea, flux, good_f, deficit, d, good_v, levels)
     res["chi"] = _patch_euler_kernel(dface, border, faces, face_edges, v_own, e_own, f_own,
                                      levels, len(edges))
+    del dface, flux, farea, deficit, border, faces
     # the level curves only meet faces whose distance range overlaps the band
     fsub = np.flatnonzero((d3[:, 2] > levels[0]) & (d3[:, 0] <= levels[-1]))
+    del d3
     e_sub, fe_sub = np.unique(face_edges[fsub], return_inverse=True)
+    del face_edges
     fe_sub = np.ascontiguousarray(fe_sub.reshape(-1, 3))
     edges_sub = np.ascontiguousarray(edges[e_sub])
     res["Lid"] = lid + vflux
@@ -1476,6 +1482,7 @@ def _cluster_box_sums(lab, clu, cid, sd, lo, own_lo, own_hi, sigma, levels, key_
         vkey = _vertex_keys(g0, key_dims)
         ek = np.sort(np.stack([vkey[edges_sub[:, 0]], vkey[edges_sub[:, 1]]], axis=1), axis=1)
         res["segs"] = np.concatenate([ek[pair[:, 0]], ek[pair[:, 1]]], axis=1)
+    del g0, fe_sub, edges_sub, fnorm
     res["V"], res["E"], res["F"] = float(v_own.sum()), float(e_own.sum()), float(f_own.sum())
 
     # mean curvature away from the solid, corrected for the blur's level-set shift
