@@ -13,8 +13,9 @@ Memory: a worker allocates and frees arrays of every size chunk after chunk. gli
 serves blocks below its mmap threshold from the heap, and that threshold rises (up to 32 MB) after
 each large block is freed, so the heap of a long-lived worker fills with freed blocks it does not
 give back (measured: 0.83 GB above the start at the peak and 0.6 GB still held at the end of a
-512³ mesh pass, against 0.58 and 0.03 GB with a fixed 1 MiB threshold, at the same speed). The
-workers therefore fix the threshold at :data:`MMAP_THRESHOLD` bytes.
+512³ mesh pass, against 0.58 and 0.03 GB with a fixed 1 MiB threshold; the CPU time changed by
+less than this machine's run-to-run noise, ≤ ~10 %). The workers therefore fix the threshold at
+:data:`MMAP_THRESHOLD` bytes.
 """
 
 from __future__ import annotations

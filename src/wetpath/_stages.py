@@ -153,8 +153,9 @@ def measure_step(store: str | os.PathLike, clusters_store: str | os.PathLike,
     opened = open_step(store)
     h = _voxel(opened, "measure")
     step = step or opened.attrs.get("step") or Path(store).stem
-    # nothing is read whole: the lattice passes stream slabs from the stores and every mesh chunk
-    # reads its own box (core ± halo), so memory is bounded by the chunk size, not the volume
+    # nothing is read whole: the lattice passes stream slabs from the stores (memory grows with
+    # the plane area) and every mesh chunk reads its own box (core ± halo, at most
+    # MESH_BOX_VOXELS whatever the volume)
     labels = opened.labels
     clusters = open_clusters(clusters_store)
     lattice = lattice_measures(labels, h, threads=threads)
