@@ -36,8 +36,10 @@ _INPUTS: tuple = ()
 _LOCK = threading.Lock()
 
 
-def _worker_start() -> None:
-    """Fix the allocator's mmap threshold in a worker (glibc only; elsewhere nothing)."""
+def fix_mmap_threshold() -> None:
+    """Fix glibc's mmap threshold of this process at :data:`MMAP_THRESHOLD` (elsewhere nothing):
+    run in every worker, and by stages that gather many results of varying size (the parent of
+    the mesh workers held 0.25–0.4 GB of freed blocks at 512³ without it, 0.15 GB with it)."""
     try:
         ctypes.CDLL(None).mallopt(_M_MMAP_THRESHOLD, MMAP_THRESHOLD)
     except (OSError, AttributeError):
@@ -60,7 +62,7 @@ def map_forked(fn: Callable, arrays: Sequence, tasks: Iterable[tuple], workers: 
         _INPUTS = tuple(arrays)
         try:
             with ProcessPoolExecutor(workers, mp_context=mp.get_context("fork"),
-                                     initializer=_worker_start) as pool:
+                                     initializer=fix_mmap_threshold) as pool:
                 return list(pool.map(_call, itertools.repeat(fn), tasks))
         finally:
             _INPUTS = ()

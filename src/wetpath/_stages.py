@@ -146,10 +146,12 @@ def measure_step(store: str | os.PathLike, clusters_store: str | os.PathLike,
     from ._geometric import summarise_geometric
     from ._lattice import lattice_measures
     from ._measure import cluster_tables, state_from_clusters
+    from ._parallel import fix_mmap_threshold
     from ._store import open_step
     from ._topological import topological_from_clusters
 
     limit_threads(threads)
+    fix_mmap_threshold()      # the mesh results arrive in many pieces: give freed blocks back
     opened = open_step(store)
     h = _voxel(opened, "measure")
     step = step or opened.attrs.get("step") or Path(store).stem
