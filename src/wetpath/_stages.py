@@ -146,15 +146,18 @@ def measure_step(store: str | os.PathLike, clusters_store: str | os.PathLike,
     from ._geometric import summarise_geometric
     from ._lattice import lattice_measures
     from ._measure import cluster_tables, state_from_clusters
+    from ._parallel import fix_mmap_threshold
     from ._store import open_step
     from ._topological import topological_from_clusters
 
     limit_threads(threads)
+    fix_mmap_threshold()      # the mesh results arrive in many pieces: give freed blocks back
     opened = open_step(store)
     h = _voxel(opened, "measure")
     step = step or opened.attrs.get("step") or Path(store).stem
-    # nothing is read whole: the lattice passes stream slabs from the stores and every mesh chunk
-    # reads its own box (core ± halo), so memory is bounded by the chunk size, not the volume
+    # nothing is read whole: the lattice passes stream slabs from the stores (memory grows with
+    # the plane area) and every mesh chunk reads its own box (core ± halo, at most
+    # MESH_BOX_VOXELS whatever the volume)
     labels = opened.labels
     clusters = open_clusters(clusters_store)
     lattice = lattice_measures(labels, h, threads=threads)
