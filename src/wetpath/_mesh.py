@@ -1524,24 +1524,31 @@ def _chunk_ranges(n: int, size: int | None, pad: int):
     return out
 
 
-def _axis_boxes(n: int, parts: int, halo: int, pad: int) -> tuple[int, int, int]:
+def _axis_boxes(n: int, parts: int, halo: int, pad: int,
+                align: int = 1) -> tuple[int, int, int]:
     """(parts, total extent, largest extent) of the chunk boxes along one axis of length ``n``
-    cut into ``parts`` equal parts (as :func:`mesh_sums` cuts it; the part count actually made
-    may be smaller)."""
-    size = math.ceil(n / parts)
+    cut into ``parts`` equal parts, their edge rounded up to a multiple of ``align`` (as
+    :func:`mesh_sums` cuts it; the part count actually made may be smaller)."""
+    size = _part_edge(n, parts, align)
     ranges = _chunk_ranges(n, None if parts == 1 else size, pad)
     ext = [min(b + halo, n + pad) - max(a - halo, -pad) for a, b in ranges]
     return len(ranges), sum(ext), max(ext)
 
 
-def _parts_within(shape, least, halo: int, pad: int, max_box: int) -> list[int]:
+def _part_edge(n: int, parts: int, align: int = 1) -> int:
+    """Core edge of ``n`` voxels cut into ``parts`` equal parts, rounded up to ``align``."""
+    return int(math.ceil(math.ceil(n / parts) / align)) * align
+
+
+def _parts_within(shape, least, halo: int, pad: int, max_box: int,
+                  align: int = 1) -> list[int]:
     """Parts per axis (at least ``least``) that mesh the least volume, halos included, with no
     chunk box over ``max_box`` voxels; ties go to fewer chunks. When no cut up to 32 more parts
     per axis fits, the one with the smallest box."""
     options = []
     for n, k0 in zip(shape, least, strict=True):
         n, k0 = int(n), max(int(k0), 1)
-        options.append(sorted({_axis_boxes(n, k, halo, pad)
+        options.append(sorted({_axis_boxes(n, k, halo, pad, align)
                                for k in range(k0, max(min(k0 + 32, n), k0) + 1)}))
     best = None
     for cz in options[0]:
@@ -1771,12 +1778,11 @@ def mesh_sums(labels, *, clusters=None, connectivity: int = 26, sigma: float = 1
         req = np.broadcast_to(np.atleast_1d(shape if chunks is None else chunks), (3,)).astype(int)
         parts = [math.ceil(n / max(int(c), 1)) for n, c in zip(shape, req, strict=True)]
         if max_box is not None:
-            parts = _parts_within(shape, parts, halo, pad, int(max_box))
+            parts = _parts_within(shape, parts, halo, pad, int(max_box), align)
         if math.prod(parts) < threads and math.prod(shape) >= PROCESS_MIN_VOXELS:
             # fewer chunks than workers: slabs along z so that every worker has one
             parts[0] = max(parts[0], min(threads, int(shape[0]) // (2 * halo) or 1))
-        csize = [int(math.ceil(math.ceil(n / k) / align)) * align
-                 for n, k in zip(shape, parts, strict=True)]
+        csize = [_part_edge(int(n), k, align) for n, k in zip(shape, parts, strict=True)]
     ranges = [_chunk_ranges(int(n), s, pad) for n, s in zip(shape, csize, strict=True)]
     key_dims = shape + 2 * pad + 2
     chunk_boxes = [(np.array([rz[0], ry[0], rx[0]]), np.array([rz[1], ry[1], rx[1]]))
