@@ -40,27 +40,25 @@ _INPUTS: tuple = ()
 _LOCK = threading.Lock()
 
 
+def _glibc(name: str, *args: int) -> None:
+    """Call the C library's ``name(*args)`` if it has it (glibc's allocator settings; elsewhere
+    nothing: they only tune memory use)."""
+    try:
+        getattr(ctypes.CDLL(None), name)(*args)
+    except (OSError, AttributeError):
+        return
+
+
 def fix_mmap_threshold() -> None:
     """Fix glibc's mmap threshold of this process at :data:`MMAP_THRESHOLD` (elsewhere nothing):
     run in every worker, and by stages that gather many results of varying size (the parent of
     the mesh workers held 0.25–0.4 GB of freed blocks at 512³ without it, 0.15 GB with it)."""
-    try:
-        ctypes.CDLL(None).mallopt(_M_MMAP_THRESHOLD, MMAP_THRESHOLD)
-    except (OSError, AttributeError):
-        pass
-
-
-def _trim() -> None:
-    """Give the free blocks of the heap back to the system (glibc only; elsewhere nothing)."""
-    try:
-        ctypes.CDLL(None).malloc_trim(0)
-    except (OSError, AttributeError):
-        pass
+    _glibc("mallopt", _M_MMAP_THRESHOLD, MMAP_THRESHOLD)
 
 
 def _call(fn: Callable, task: tuple):
     out = fn(*_INPUTS, *task)
-    _trim()                      # before the next task: its peak starts from the worker's base
+    _glibc("malloc_trim", 0)     # before the next task: its peak starts from the worker's base
     return out
 
 

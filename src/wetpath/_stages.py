@@ -23,7 +23,7 @@ __all__ = ["label_step", "measure_step", "track_step", "increment_step", "collec
            "history_series", "measure_paths"]
 
 # largest chunk edge (voxels) of the mesh measures and geometric angles in the measure stage (each
-# axis is split into equal parts no longer than this): each chunk is meshed with a halo of 26
+# axis is split into equal parts no longer than this): each chunk is meshed with a halo of 23
 # voxels (blur, smoothing rings, the fits' reach), so larger chunks waste less (volume meshed per
 # voxel at 512³: 2.2 with 192-voxel chunks, 1.45 with 256) but hold more memory; a volume of
 # fewer chunks than workers is cut into one slab along z per worker (from 160³ up; smaller ones
