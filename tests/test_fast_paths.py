@@ -202,8 +202,15 @@ def test_squared_distance_equals_scipy(medium, threads):
             np.full(feature.shape, np.inf)
         for cap in (3.0, 100.0):
             big = cap**2 + 1.0
-            np.testing.assert_array_equal(nearest_feature(feature, cap, threads)[0],
-                                          np.minimum(ref, big).astype(np.float32))
+            d2, rank = nearest_feature(feature, cap, threads)
+            np.testing.assert_array_equal(d2, np.minimum(ref, big).astype(np.float32))
+            # the feature voxels carry their C-order rank (numbered per thread from its planes'
+            # offset); a voxel within the cap carries the rank of a voxel at its distance
+            np.testing.assert_array_equal(rank[feature], np.arange(int(feature.sum())))
+            near = d2 < big
+            at = np.argwhere(feature)[rank[near]]
+            np.testing.assert_allclose(np.sum((np.argwhere(near) - at) ** 2, axis=1),
+                                       ref[near], atol=1e-9)
 
 
 @pytest.mark.parametrize("cap", [3.0, 18.5])
@@ -218,10 +225,9 @@ def test_windowed_distance_passes_equal_lower_envelope(medium, cap):
     w = int(np.floor(np.sqrt(big)))
     out = []
     for envelope in (False, True):
-        idx = np.full(feature.shape, -1, np.int32)
-        idx[feature] = np.arange(int(feature.sum()), dtype=np.int32)
+        idx = np.empty(feature.shape, np.int32)
         d = np.empty(feature.shape, np.float32)
-        m._edt_rows_binary(feature, d, idx, big, 0, d.shape[0])
+        m._edt_rows_binary(feature, d, idx, big, 0, d.shape[0], np.zeros(1, np.int64))
         for ax, n in ((1, d.shape[0]), (0, d.shape[1])):
             if envelope:
                 m._edt_axis(d, idx, ax, 0, n)

@@ -403,8 +403,11 @@ def run_parallel(items: Iterator, work: Callable, threads: int | None,
                  max_pending: int | None = None):
     """Apply ``work(worker_index, item)`` to items of a sequential iterator on ``threads`` threads,
     at most ``max_pending`` (default ``threads``) items in flight besides the one being produced
-    (bounds memory). Each worker index is used by one thread
-    at a time, so per-worker buffers need no lock. Results are returned in item order."""
+    (bounds memory). Items are retired in order: the next item is produced only once every item
+    ``max_pending`` or more places before it has finished, so a producer that reuses a ring of
+    ``max_pending`` + 1 buffers (:func:`iter_slabs`) never overwrites one still being read, even
+    when later items finish first. Each worker index is used by one thread at a time, so
+    per-worker buffers need no lock. Results are returned in item order."""
     n = resolve_threads(threads)
     free: queue.Queue[int] = queue.Queue()
     for w in range(n):
@@ -419,14 +422,13 @@ def run_parallel(items: Iterator, work: Callable, threads: int | None,
 
     if n == 1:
         return [work(0, item) for item in items]
-    limit = threading.BoundedSemaphore(max_pending or n)
+    limit = max_pending or n
     futures: list[Future] = []
     with ThreadPoolExecutor(n) as pool:
-        for item in items:
-            limit.acquire()
-            fut = pool.submit(run, item)
-            fut.add_done_callback(lambda _f: limit.release())
-            futures.append(fut)
+        for k, item in enumerate(items):
+            futures.append(pool.submit(run, item))
+            if k >= limit:
+                futures[k - limit].result()     # wait for the oldest, not for any one
         return [f.result() for f in futures]
 
 

@@ -267,24 +267,26 @@ def _edt_window(d, idx, axis, lo, hi, w):  # pragma: no cover
 
 
 @njit(cache=True, nogil=True)
-def _edt_rows_binary(feature, d, idx, big, lo, hi):  # pragma: no cover
+def _edt_rows_binary(feature, d, idx, big, lo, hi, rank0):  # pragma: no cover
     """First pass (along x) for a binary feature: squared distance to the nearest ``True`` voxel
     of the row by a forward and a backward sweep, capped at ``big``, for the planes ``lo:hi``;
-    ``idx`` (labels at the feature voxels) receives the nearest one's label."""
+    ``idx`` receives that voxel's rank among the ``True`` voxels in C order (−1 in rows without
+    one), counted from ``rank0[lo]`` (the ``True`` voxels before plane ``lo``)."""
     n0, n1, n = feature.shape
     far = 1 << 30
+    rank = rank0[lo]
     for i in range(lo, hi):
         for j in range(n1):
             last = -far
-            mark = idx[i, j, 0]
+            mark = -1
             for q in range(n):
                 if feature[i, j, q]:
                     last = q
-                    mark = idx[i, j, q]
+                    mark = rank
+                    rank += 1
                 g = q - last
                 d[i, j, q] = min(float(g) * g, big)
-                if last > -far:
-                    idx[i, j, q] = mark
+                idx[i, j, q] = mark
             last = far
             for q in range(n - 1, -1, -1):
                 if feature[i, j, q]:
@@ -314,11 +316,13 @@ def nearest_feature(feature: np.ndarray, cap: float,
     ``scipy.ndimage.distance_transform_edt`` with ``return_indices`` (ties may pick another,
     equally near voxel)."""
     feature = np.ascontiguousarray(feature, dtype=np.bool_)
-    idx = np.full(feature.shape, -1, np.int32)
-    idx[feature] = np.arange(int(feature.sum()), dtype=np.int32)
+    idx = np.empty(feature.shape, np.int32)
+    # ranks: the first pass numbers the True voxels, each thread from its first plane's offset
+    rank0 = np.zeros(feature.shape[0] + 1, np.int64)
+    np.cumsum(np.count_nonzero(feature.reshape(feature.shape[0], -1), axis=1), out=rank0[1:])
     d = np.empty(feature.shape, np.float32)
     big = np.float32(float(cap) ** 2 + 1.0)
-    passes = [lambda lo, hi: _edt_rows_binary(feature, d, idx, big, lo, hi)]
+    passes = [lambda lo, hi: _edt_rows_binary(feature, d, idx, big, lo, hi, rank0)]
     w = int(math.floor(math.sqrt(float(big))))
     if 2 * w + 1 <= _EDT_WINDOW_MAX:
         passes += [lambda lo, hi, ax=ax: _edt_window(d, idx, ax, lo, hi, w) for ax in (1, 0)]
