@@ -402,3 +402,16 @@ def test_boundary_voxels_equal_dilation(medium):
     bnd, n, any_solid, any_pore, all_known = m._boundary_voxels(solid, pore)
     np.testing.assert_array_equal(bnd, ref)
     assert (n, any_solid, any_pore, all_known) == (ref.sum(), True, True, bool((solid | pore).all()))
+
+
+def test_compact_equals_unique():
+    # the marking path equals numpy's sorting one (np.unique with return_inverse)
+    from wetpath._mesh import _compact
+
+    rng = np.random.default_rng(3)
+    for n, shape in ((50, (40, 3)), (7, (0, 3)), (1000, (5, 3))):
+        index = rng.integers(0, n, size=shape)
+        ref_u, ref_inv = np.unique(index, return_inverse=True)
+        got_u, got_inv = _compact(index, n)
+        np.testing.assert_array_equal(got_u, ref_u)
+        np.testing.assert_array_equal(got_inv, ref_inv.reshape(shape))

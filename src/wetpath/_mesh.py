@@ -629,6 +629,15 @@ def _edges(faces: np.ndarray, nv: int):
     return _edges_kernel(np.ascontiguousarray(faces, np.int64), int(nv))
 
 
+def _compact(index: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
+    """``np.unique(index, return_inverse=True)`` for indices into ``range(n)``, by marking instead
+    of sorting: the indices used, ascending, and each entry's position among them."""
+    used = np.zeros(n, np.bool_)
+    used[index] = True
+    rank = np.cumsum(used) - 1
+    return np.flatnonzero(used), rank[index]
+
+
 def _edges_reference(faces: np.ndarray, nv: int):
     """Plain numpy oracle of :func:`_edges`."""
     a = faces.ravel()
@@ -1474,7 +1483,7 @@ def _cluster_box_sums(lab, clu, cid, sd, lo, own_lo, own_hi, sigma, levels, key_
     # the level curves only meet faces whose distance range overlaps the band
     fsub = np.flatnonzero((d3[:, 2] > levels[0]) & (d3[:, 0] <= levels[-1]))
     del d3
-    e_sub, fe_sub = np.unique(face_edges[fsub], return_inverse=True)
+    e_sub, fe_sub = _compact(face_edges[fsub], len(edges))
     del face_edges
     fe_sub = np.ascontiguousarray(fe_sub.reshape(-1, 3))
     edges_sub = np.ascontiguousarray(edges[e_sub])
