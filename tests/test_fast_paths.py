@@ -292,14 +292,16 @@ def test_point_blur_equals_separable_passes(medium):
     from wetpath import _mesh as m
 
     lab, _ = medium
-    known = np.pad(lab != 0, 3)                       # unknown shell, as outside the array
+    codes = np.pad(lab, 3, constant_values=m._OUTSIDE)   # unknown shell, as outside the array
+    known = (codes >= 1) & (codes <= 3)
     rng = np.random.default_rng(4)
-    pts = np.argwhere(known)[rng.choice(int(known.sum()), 300, replace=False)]
-    pts = np.concatenate([pts, [[0, 0, 0], np.array(known.shape) - 1]])   # edges continued
-    got = m._blur_and_gradient_at(known, pts)
-    ref = m._blur_and_gradient(known, tuple(pts.T))
-    for g, r in zip(got, ref, strict=True):
-        np.testing.assert_allclose(g, r, rtol=0, atol=1e-6)   # float32 passes vs float64 sums
+    for count in (300, known.size // 50):              # the x sums at the points; over planes
+        pts = np.argwhere(known)[np.sort(rng.choice(int(known.sum()), count, replace=False))]
+        pts = np.concatenate([[[0, 0, 0]], pts, [np.array(known.shape) - 1]])  # edges continued
+        got = m._blur_and_gradient_at(codes, 1, 3, pts)
+        ref = m._blur_and_gradient(known, tuple(pts.T))
+        for g, r in zip(got, ref, strict=True):
+            np.testing.assert_allclose(g, r, rtol=0, atol=1e-6)  # float32 passes, float64 sums
 
 
 def test_level_curves_kernel_equals_numpy(medium):
@@ -334,11 +336,14 @@ def test_near_unknown_equals_maximum_filter(medium):
     from wetpath import _mesh as m
 
     lab, _ = medium
-    known = np.pad(lab != 0, 3)                       # unknown shell, as outside the array
-    known[20, 20, 20] = False                         # and one excluded voxel inside
+    codes = np.pad(lab, 3, constant_values=m._OUTSIDE)   # unknown shell, as outside the array
+    codes[20, 20, 20] = 0                                # and one excluded voxel inside
+    known = (codes >= 1) & (codes <= 3)
     pts = np.argwhere(np.ones(known.shape, bool))[::7]
     ref = ndimage.maximum_filter(~known, size=9, mode="constant", cval=False)[tuple(pts.T)]
-    np.testing.assert_array_equal(m._near_unknown(known, pts, 4), ref)
+    np.testing.assert_array_equal(m._near_unknown(codes, pts, 4), ref)
+    shuffled = np.random.default_rng(2).permutation(len(pts))   # any order of the points
+    np.testing.assert_array_equal(m._near_unknown(codes, pts[shuffled], 4), ref[shuffled])
 
 
 def test_masked_marching_cubes_equals_full(medium):
@@ -381,14 +386,14 @@ def test_point_blur_direct_equals_passes(medium):
     from wetpath import _mesh as m
 
     lab, _ = medium
-    known = np.pad(lab != 0, 3)
+    codes = np.pad(lab, 3, constant_values=m._OUTSIDE)
     rng = np.random.default_rng(6)
-    pts = np.argwhere(known)[rng.choice(int(known.sum()), 200, replace=False)]
-    pts = np.concatenate([pts, [[0, 0, 0], np.array(known.shape) - 1]])
+    pts = np.argwhere(codes != 0)[rng.choice(int((codes != 0).sum()), 200, replace=False)]
+    pts = np.concatenate([pts, [[0, 0, 0], np.array(codes.shape) - 1]])
     w0, w1 = m._gauss_weights(0), m._gauss_weights(1)
-    xs0, xs1 = m._x_blur_pair(known, w0, w1)
-    np.testing.assert_array_equal(m._point_blur_direct(known, pts, w0, w1),
-                                  m._point_blur(xs0, xs1, pts, w0, w1))
+    for lo, hi in ((1, 3), (2, 3)):                    # known voxels; pore
+        np.testing.assert_array_equal(m._point_blur_direct(codes, lo, hi, pts, w0, w1),
+                                      m._point_blur(codes, lo, hi, pts, w0, w1))
 
 
 def test_boundary_voxels_equal_dilation(medium):
@@ -397,11 +402,11 @@ def test_boundary_voxels_equal_dilation(medium):
 
     lab, _ = medium
     solid, pore = lab == 1, np.isin(lab, (2, 3))
-    pore[5, 5, 5] = True                                     # pore flag on a solid voxel: ignored
-    ref = solid & ndimage.binary_dilation(pore & ~solid, ndimage.generate_binary_structure(3, 1))
-    bnd, n, any_solid, any_pore, all_known = m._boundary_voxels(solid, pore)
+    ref = solid & ndimage.binary_dilation(pore, ndimage.generate_binary_structure(3, 1))
+    bnd, n, any_solid, any_pore, all_known = m._boundary_voxels(lab)
     np.testing.assert_array_equal(bnd, ref)
     assert (n, any_solid, any_pore, all_known) == (ref.sum(), True, True, bool((solid | pore).all()))
+    assert m._boundary_voxels(np.where(lab == 0, 1, lab).astype(np.uint8))[4]   # nothing excluded
 
 
 def test_compact_equals_unique():

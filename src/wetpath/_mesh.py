@@ -339,18 +339,19 @@ def nearest_feature(feature: np.ndarray, cap: float,
 
 
 @njit(cache=True, nogil=True)
-def _plane_distance(d2, idx, solid, bcoord, bnormal, bheight, big, clip):  # pragma: no cover
+def _plane_distance(d2, idx, codes, bcoord, bnormal, bheight, big, clip):  # pragma: no cover
     """Signed distance of every voxel to the tangent plane of its nearest solid-boundary voxel b:
     (x − b)·ν_b + h_b, clipped to ±clip (float32), written over the squared distances ``d2``
-    (returned); ``idx`` holds b's rank, which indexes ``bcoord``, ``bnormal`` and ``bheight``."""
-    nz, ny, nx = solid.shape
+    (returned); ``idx`` holds b's rank, which indexes ``bcoord``, ``bnormal`` and ``bheight``;
+    far from any boundary voxel −clip in the solid (phase code ``SOLID``), +clip elsewhere."""
+    nz, ny, nx = codes.shape
     out = d2
     for i in range(nz):
         for j in range(ny):
             for k in range(nx):
                 b = idx[i, j, k]
                 if d2[i, j, k] >= big or b < 0:
-                    v = -clip if solid[i, j, k] else clip
+                    v = -clip if codes[i, j, k] == SOLID else clip
                 else:
                     v = ((i - bcoord[b, 0]) * bnormal[b, 0] + (j - bcoord[b, 1]) * bnormal[b, 1]
                          + (k - bcoord[b, 2]) * bnormal[b, 2] + bheight[b])
@@ -359,29 +360,36 @@ def _plane_distance(d2, idx, solid, bcoord, bnormal, bheight, big, clip):  # pra
 
 
 @njit(cache=True, nogil=True)
-def _boundary_voxels(solid, pore):  # pragma: no cover
-    """Solid voxels with a face-neighbour in ``pore`` (not solid; nothing beyond the array), in
-    one pass (oracle: a binary dilation by the 6-neighbourhood), their count, whether any voxel
-    is solid or pore, and whether every voxel is one of them."""
-    nz, ny, nx = solid.shape
+def _is_pore(c):  # pragma: no cover
+    return c == WETTING or c == NONWETTING
+
+
+@njit(cache=True, nogil=True)
+def _boundary_voxels(codes):  # pragma: no cover
+    """Solid voxels (phase code ``SOLID``) with a face-neighbour in the pore (``WETTING`` or
+    ``NONWETTING``; nothing beyond the array), in one pass (oracle: a binary dilation by the
+    6-neighbourhood), their count, whether any voxel is solid or pore, and whether every voxel is
+    one of them (no excluded or outside voxel)."""
+    nz, ny, nx = codes.shape
     bnd = np.zeros((nz, ny, nx), np.bool_)
     n, any_solid, any_pore, all_known = 0, False, False, True
     for i in range(nz):
         for j in range(ny):
             for k in range(nx):
-                if not solid[i, j, k]:
-                    if pore[i, j, k]:
+                c = codes[i, j, k]
+                if c != SOLID:
+                    if _is_pore(c):
                         any_pore = True
                     else:
                         all_known = False
                     continue
                 any_solid = True
-                hit = ((i > 0 and pore[i - 1, j, k] and not solid[i - 1, j, k])
-                       or (i < nz - 1 and pore[i + 1, j, k] and not solid[i + 1, j, k])
-                       or (j > 0 and pore[i, j - 1, k] and not solid[i, j - 1, k])
-                       or (j < ny - 1 and pore[i, j + 1, k] and not solid[i, j + 1, k])
-                       or (k > 0 and pore[i, j, k - 1] and not solid[i, j, k - 1])
-                       or (k < nx - 1 and pore[i, j, k + 1] and not solid[i, j, k + 1]))
+                hit = ((i > 0 and _is_pore(codes[i - 1, j, k]))
+                       or (i < nz - 1 and _is_pore(codes[i + 1, j, k]))
+                       or (j > 0 and _is_pore(codes[i, j - 1, k]))
+                       or (j < ny - 1 and _is_pore(codes[i, j + 1, k]))
+                       or (k > 0 and _is_pore(codes[i, j, k - 1]))
+                       or (k < nx - 1 and _is_pore(codes[i, j, k + 1])))
                 if hit:
                     bnd[i, j, k] = True
                     n += 1
@@ -413,48 +421,50 @@ def _blur_and_gradient(mask: np.ndarray, at: tuple) -> list[np.ndarray]:
 
 
 @njit(cache=True, nogil=True)
-def _x_blur_pair(mask, w0, w1):  # pragma: no cover
-    """``mask`` correlated along x with ``w0`` and with ``w1`` (odd lengths; symmetric and
-    antisymmetric), edge values continued, in float32: the arithmetic of
-    ``ndimage.gaussian_filter1d`` (float64 sums, outermost taps first), so equal to it bit for
-    bit, in one pass over the mask instead of two over a float copy."""
-    nz, ny, n = mask.shape
+def _x_blur_plane(codes, lo, hi, i, w0, w1, xs0, xs1, line, a0, a1):  # pragma: no cover
+    """The indicator lo ≤ ``codes`` ≤ hi of plane ``i`` correlated along x with ``w0`` and with
+    ``w1`` (odd lengths; symmetric and antisymmetric), edge values continued, into ``xs0`` and
+    ``xs1`` (float32, (ny, nx)): the arithmetic of ``ndimage.gaussian_filter1d`` (float64 sums,
+    outermost taps first), so equal to it bit for bit."""
+    ny, n = codes.shape[1], codes.shape[2]
     r = w0.shape[0] // 2
-    xs0 = np.empty((nz, ny, n), np.float32)
-    xs1 = np.empty((nz, ny, n), np.float32)
-    line = np.empty(n + 2 * r)
-    a0 = np.empty(n)
-    a1 = np.empty(n)
-    for i in range(nz):
-        for j in range(ny):
+    for j in range(ny):
+        for t in range(n):
+            c = codes[i, j, t]
+            line[r + t] = 1.0 if lo <= c and c <= hi else 0.0
+        for t in range(r):
+            line[t] = line[r]
+            line[r + n + t] = line[r + n - 1]
+        for t in range(n):
+            a0[t] = line[r + t] * w0[r]
+            a1[t] = line[r + t] * w1[r]
+        for q in range(r, 0, -1):
+            u0, u1 = w0[r - q], w1[r - q]
             for t in range(n):
-                line[r + t] = 1.0 if mask[i, j, t] else 0.0
-            for t in range(r):
-                line[t] = line[r]
-                line[r + n + t] = line[r + n - 1]
-            for t in range(n):
-                a0[t] = line[r + t] * w0[r]
-                a1[t] = line[r + t] * w1[r]
-            for q in range(r, 0, -1):
-                u0, u1 = w0[r - q], w1[r - q]
-                for t in range(n):
-                    lo, hi = line[r + t - q], line[r + t + q]
-                    a0[t] += (lo + hi) * u0
-                    a1[t] += (lo - hi) * u1
-            for t in range(n):
-                xs0[i, j, t] = a0[t]
-                xs1[i, j, t] = a1[t]
-    return xs0, xs1
+                lo_v, hi_v = line[r + t - q], line[r + t + q]
+                a0[t] += (lo_v + hi_v) * u0
+                a1[t] += (lo_v - hi_v) * u1
+        for t in range(n):
+            xs0[j, t] = a0[t]
+            xs1[j, t] = a1[t]
 
 
 @njit(cache=True, nogil=True)
-def _point_blur(xs0, xs1, points, w0, w1):  # pragma: no cover
-    """The (z, y) part of a separable Gaussian blur and its gradient at ``points``: ``xs0``/``xs1``
-    are the array already filtered along x by the Gaussian (``w0``) and its derivative (``w1``);
-    edge values continued. Rows: value, ∂z, ∂y, ∂x. Runs of points on one (z, y) row (as
-    ``np.argwhere`` lists them) share the row reads."""
-    nz, ny = xs0.shape[0], xs0.shape[1]
+def _point_blur(codes, lo, hi, points, w0, w1):  # pragma: no cover
+    """Gaussian blur (weights ``w0``) and gradient (``w1``, the derivative's) of the indicator
+    lo ≤ ``codes`` ≤ hi at ``points`` (in C order, as ``np.argwhere`` lists them), edge values
+    continued. Rows: value, ∂z, ∂y, ∂x. Separable: each plane is filtered along x once, into a
+    ring of 2r + 1 planes that follows the points' z (no array-sized intermediate), then the
+    (z, y) sums are formed at the points; runs of points on one (z, y) row share the row reads."""
+    nz, ny, nx = codes.shape
     r = w0.shape[0] // 2
+    m = 2 * r + 1
+    xs0 = np.empty((m, ny, nx), np.float32)
+    xs1 = np.empty((m, ny, nx), np.float32)
+    held = np.full(m, -1, np.int64)             # the plane that each ring slot holds
+    line = np.empty(nx + 2 * r)
+    a0 = np.empty(nx)
+    a1 = np.empty(nx)
     n = points.shape[0]
     out = np.zeros((4, n))
     p0 = 0
@@ -462,62 +472,71 @@ def _point_blur(xs0, xs1, points, w0, w1):  # pragma: no cover
         p1 = p0 + 1
         while p1 < n and points[p1, 0] == points[p0, 0] and points[p1, 1] == points[p0, 1]:
             p1 += 1
-        for a in range(2 * r + 1):
+        for a in range(m):
             i = min(max(points[p0, 0] + a - r, 0), nz - 1)
-            for b in range(2 * r + 1):
+            if held[i % m] != i:
+                _x_blur_plane(codes, lo, hi, i, w0, w1, xs0[i % m], xs1[i % m], line, a0, a1)
+                held[i % m] = i
+        for a in range(m):
+            s = min(max(points[p0, 0] + a - r, 0), nz - 1) % m
+            for b in range(m):
                 j = min(max(points[p0, 1] + b - r, 0), ny - 1)
                 c00, c10, c01 = w0[a] * w0[b], w1[a] * w0[b], w0[a] * w1[b]
                 for p in range(p0, p1):
                     k = points[p, 2]
-                    v0 = np.float64(xs0[i, j, k])
+                    v0 = np.float64(xs0[s, j, k])
                     out[0, p] += c00 * v0
                     out[1, p] += c10 * v0
                     out[2, p] += c01 * v0
-                    out[3, p] += c00 * xs1[i, j, k]
+                    out[3, p] += c00 * xs1[s, j, k]
         p0 = p1
     return out
 
 
 @njit(cache=True, nogil=True)
-def _near_unknown(known, points, r):  # pragma: no cover
-    """Whether the (2r + 1)³ cube around each point holds a voxel outside ``known`` (inside the
-    array): ``ndimage.maximum_filter(~known, 2r + 1, mode="constant")`` at the points, from one
-    pass along x and (z, y) windows at the points only."""
-    nz, ny, nx = known.shape
-    row = np.zeros((nz, ny, nx), np.bool_)      # an unknown voxel within r along x
-    for i in range(nz):
-        for j in range(ny):
-            last = -(1 << 30)
-            for k in range(nx):                 # nearest unknown at or before k
-                if not known[i, j, k]:
-                    last = k
-                row[i, j, k] = k - last <= r
-            last = 1 << 30
-            for k in range(nx - 1, -1, -1):     # ... at or after k
-                if not known[i, j, k]:
-                    last = k
-                if last - k <= r:
-                    row[i, j, k] = True
+def _near_unknown(codes, points, r):  # pragma: no cover
+    """Whether the (2r + 1)³ cube around each point (in C order) holds a voxel (inside the array)
+    that is neither solid nor pore (phase codes ``SOLID`` … ``NONWETTING``):
+    ``ndimage.maximum_filter`` of that mask (``mode="constant"``) at the points, from one pass
+    along x over a ring of 2r + 1 planes that follows the points' z, and (z, y) windows at the
+    points only."""
+    nz, ny, nx = codes.shape
+    m = 2 * r + 1
+    row = np.zeros((m, ny, nx), np.bool_)       # an unknown voxel within r along x
+    held = np.full(m, -1, np.int64)
     out = np.zeros(points.shape[0], np.bool_)
     for p in range(points.shape[0]):
         k = points[p, 2]
         for i in range(max(points[p, 0] - r, 0), min(points[p, 0] + r + 1, nz)):
-            for j in range(max(points[p, 1] - r, 0), min(points[p, 1] + r + 1, ny)):
-                if row[i, j, k]:
-                    out[p] = True
-                    break
-            if out[p]:
-                break
+            s = i % m
+            if held[s] != i:
+                held[s] = i
+                for j in range(ny):
+                    last = -(1 << 30)
+                    for t in range(nx):                 # nearest unknown at or before t
+                        if not (SOLID <= codes[i, j, t] <= NONWETTING):
+                            last = t
+                        row[s, j, t] = t - last <= r
+                    last = 1 << 30
+                    for t in range(nx - 1, -1, -1):     # ... at or after t
+                        if not (SOLID <= codes[i, j, t] <= NONWETTING):
+                            last = t
+                        if last - t <= r:
+                            row[s, j, t] = True
+            if not out[p]:
+                for j in range(max(points[p, 1] - r, 0), min(points[p, 1] + r + 1, ny)):
+                    if row[s, j, k]:
+                        out[p] = True
+                        break
     return out
 
 
 @njit(cache=True, nogil=True)
-def _point_blur_direct(mask, points, w0, w1):  # pragma: no cover
-    """:func:`_point_blur` of :func:`_x_blur_pair` of ``mask`` without the passes over the array:
-    the x sums are formed at the (z, y) windows of the points only, with the same arithmetic
-    (float64 sums rounded to float32, then the same window sums), so equal bit for bit; cheaper
-    when the points are few."""
-    nz, ny, nx = mask.shape
+def _point_blur_direct(codes, lo, hi, points, w0, w1):  # pragma: no cover
+    """:func:`_point_blur` without the passes over the planes: the x sums are formed at the
+    (z, y) windows of the points only, with the same arithmetic (float64 sums rounded to float32,
+    then the same window sums), so equal bit for bit; cheaper when the points are few."""
+    nz, ny, nx = codes.shape
     r = w0.shape[0] // 2
     n = points.shape[0]
     out = np.zeros((4, n))
@@ -527,14 +546,16 @@ def _point_blur_direct(mask, points, w0, w1):  # pragma: no cover
             i = min(max(points[p, 0] + a - r, 0), nz - 1)
             for b in range(2 * r + 1):
                 j = min(max(points[p, 1] + b - r, 0), ny - 1)
-                c = 1.0 if mask[i, j, k] else 0.0
+                c = codes[i, j, k]
+                c = 1.0 if lo <= c and c <= hi else 0.0
                 a0 = c * w0[r]
                 a1 = c * w1[r]
                 for q in range(r, 0, -1):
-                    lo = 1.0 if mask[i, j, max(k - q, 0)] else 0.0
-                    hi = 1.0 if mask[i, j, min(k + q, nx - 1)] else 0.0
-                    a0 += (lo + hi) * w0[r - q]
-                    a1 += (lo - hi) * w1[r - q]
+                    cl, ch = codes[i, j, max(k - q, 0)], codes[i, j, min(k + q, nx - 1)]
+                    lo_v = 1.0 if lo <= cl and cl <= hi else 0.0
+                    hi_v = 1.0 if lo <= ch and ch <= hi else 0.0
+                    a0 += (lo_v + hi_v) * w0[r - q]
+                    a1 += (lo_v - hi_v) * w1[r - q]
                 v0 = np.float64(np.float32(a0))
                 c00, c10, c01 = w0[a] * w0[b], w1[a] * w0[b], w0[a] * w1[b]
                 out[0, p] += c00 * v0
@@ -544,17 +565,17 @@ def _point_blur_direct(mask, points, w0, w1):  # pragma: no cover
     return out
 
 
-def _blur_and_gradient_at(mask: np.ndarray, points: np.ndarray) -> np.ndarray:
-    """:func:`_blur_and_gradient` (its test oracle) at the voxels ``points`` (P, 3): two passes
-    along x over the array, then 9 × 9 (z, y) sums at the points only; for few points (fewer
-    than one per 400 voxels) the x sums at the points' windows only. Rows: value, ∂z, ∂y, ∂x."""
+def _blur_and_gradient_at(codes: np.ndarray, lo: int, hi: int, points: np.ndarray) -> np.ndarray:
+    """:func:`_blur_and_gradient` (its test oracle) of the indicator lo ≤ ``codes`` ≤ hi at the
+    voxels ``points`` (P, 3, in C order): x passes over the planes near the points, then 9 × 9
+    (z, y) sums at the points only; for few points (fewer than one per 400 voxels) the x sums at
+    the points' windows only. Rows: value, ∂z, ∂y, ∂x."""
     w0, w1 = _gauss_weights(0), _gauss_weights(1)
-    mask = np.ascontiguousarray(mask, dtype=np.bool_)
+    codes = np.ascontiguousarray(codes, dtype=np.uint8)
     points = np.ascontiguousarray(points, np.int64)
-    if len(points) * 400 < mask.size:
-        return _point_blur_direct(mask, points, w0, w1)
-    xs0, xs1 = _x_blur_pair(mask, w0, w1)
-    return _point_blur(xs0, xs1, points, w0, w1)
+    if len(points) * 400 < codes.size:
+        return _point_blur_direct(codes, lo, hi, points, w0, w1)
+    return _point_blur(codes, lo, hi, points, w0, w1)
 
 
 def wall_distance(solid: np.ndarray, clip: float, pore: np.ndarray | None = None,
@@ -586,25 +607,33 @@ def wall_distance(solid: np.ndarray, clip: float, pore: np.ndarray | None = None
     threads : int
         Threads of the distance transform.
     """
-    solid = np.ascontiguousarray(solid, dtype=np.bool_)
-    pore = ~solid if pore is None else np.ascontiguousarray(pore, dtype=np.bool_)
-    bnd, n_bnd, any_solid, any_pore, all_known = _boundary_voxels(solid, pore)
+    solid = np.asarray(solid, dtype=np.bool_)
+    pore = ~solid if pore is None else np.asarray(pore, dtype=np.bool_)
+    codes = np.where(solid, np.uint8(SOLID), np.where(pore, np.uint8(WETTING),
+                                                      np.uint8(EXCLUDED)))
+    return phase_wall_distance(codes, clip, threads)
+
+
+def phase_wall_distance(codes: np.ndarray, clip: float, threads: int = 1) -> np.ndarray:
+    """:func:`wall_distance` of a phase-code array (uint8): ``SOLID`` is the solid, ``WETTING``
+    and ``NONWETTING`` the pore, any other code unknown. Reads the codes where they are, without
+    a mask per phase."""
+    codes = np.ascontiguousarray(codes, dtype=np.uint8)
+    bnd, n_bnd, any_solid, any_pore, all_known = _boundary_voxels(codes)
     if n_bnd == 0:
-        return np.full(solid.shape, -clip if any_solid and not any_pore else clip, np.float32)
-    pore = pore & ~solid
+        return np.full(codes.shape, -clip if any_solid and not any_pore else clip, np.float32)
     bcoord = np.argwhere(bnd)
-    a = _blur_and_gradient_at(pore, bcoord)
+    a = _blur_and_gradient_at(codes, WETTING, NONWETTING, bcoord)
     if all_known:
         p, grad = a[0], np.stack(a[1:], axis=1)
     else:   # normalised convolution: P = G*pore / G*known, ∇P by the quotient rule
         # G*known is 1 (its gradient 0) where the window holds no unknown voxel: sum the windows
         # only of the boundary voxels near unknown ones (array border, field of view)
-        known = solid | pore
-        near = _near_unknown(known, bcoord, int(4.0 * SOLID_BLUR + 0.5))
+        near = _near_unknown(codes, bcoord, int(4.0 * SOLID_BLUR + 0.5))
         b = np.zeros((4, len(bcoord)))
         b[0] = 1.0
         if near.any():
-            b[:, near] = _blur_and_gradient_at(known, bcoord[near])
+            b[:, near] = _blur_and_gradient_at(codes, SOLID, NONWETTING, bcoord[near])
         p = a[0] / np.maximum(b[0], 1e-6)
         grad = np.stack([ai * b[0] - a[0] * bi for ai, bi in zip(a[1:], b[1:], strict=True)],
                         axis=1)
@@ -612,8 +641,9 @@ def wall_distance(solid: np.ndarray, clip: float, pore: np.ndarray | None = None
     bheight = SOLID_BLUR * special.ndtri(np.clip(p, 1e-6, 1 - 1e-6))
     big = (clip + 2.0) ** 2 + 1.0
     d2, idx = nearest_feature(bnd, clip + 2.0, threads)
-    out = _plane_distance(d2, idx, solid, bcoord, bnormal, bheight, big, float(clip))
-    del d2, idx, bnd, pore        # peak memory of a chunk's worker: free before the blur
+    del bnd
+    out = _plane_distance(d2, idx, codes, bcoord, bnormal, bheight, big, float(clip))
+    del d2, idx                   # peak memory of a chunk's worker: free before the blur
     return gaussian_blur(out, 1.0, nearest=True, overwrite=True)
 
 
@@ -1864,8 +1894,7 @@ def _chunk_sums(labels, clusters, own_lo, own_hi, ctx: _ChunkContext, pool=None)
     blo = np.maximum(own_lo - halo, -pad)
     bhi = np.minimum(own_hi + halo, shape + pad)
     lab_c = _extract(labels, blo, bhi, _OUTSIDE)
-    sd_c = wall_distance(lab_c == SOLID, _distance_clip(ctx.sigma),
-                         pore=(lab_c == WETTING) | (lab_c == NONWETTING), threads=ctx.threads)
+    sd_c = phase_wall_distance(lab_c, _distance_clip(ctx.sigma), threads=ctx.threads)
     clu_c = _extract(clusters, blo, bhi, 0)
 
     def work(cid):
