@@ -77,7 +77,7 @@ from skimage.measure import marching_cubes
 
 from ._codes import EXCLUDED, NONWETTING, SOLID, WETTING
 from ._errors import WetpathError
-from ._parallel import map_forked
+from ._parallel import map_forked, scratch
 
 TAUBIN_LAMBDA, TAUBIN_MU, TAUBIN_ITERATIONS = 0.5, -0.53, 10
 BAND_START = 2.5          # in σ: the band starts this far from the solid
@@ -304,8 +304,9 @@ def _split(n: int, threads: int) -> list[tuple[int, int]]:
     return list(zip(cuts[:-1].tolist(), cuts[1:].tolist(), strict=True))
 
 
-def nearest_feature(feature: np.ndarray, cap: float,
-                    threads: int = 1) -> tuple[np.ndarray, np.ndarray]:
+def nearest_feature(feature: np.ndarray, cap: float, threads: int = 1,
+                    out: tuple[np.ndarray, np.ndarray] | None = None
+                    ) -> tuple[np.ndarray, np.ndarray]:
     """Squared distance (voxels², float32, exact below ``cap`` voxels and capped just above it)
     to the nearest ``True`` voxel of ``feature`` and that voxel's rank among the ``True`` voxels in
     C order (int32; meaningless where the distance is capped): three separable passes (x, y, z),
@@ -314,13 +315,15 @@ def nearest_feature(feature: np.ndarray, cap: float,
     a large one the lower-envelope transform of Felzenszwalb & Huttenlocher (2012)
     (:func:`_edt_axis`); both give the same distances and labels below the cap. Test oracle:
     ``scipy.ndimage.distance_transform_edt`` with ``return_indices`` (ties may pick another,
-    equally near voxel)."""
+    equally near voxel). ``out``: C-contiguous float32 and int32 arrays of ``feature``'s shape
+    to fill and return."""
     feature = np.ascontiguousarray(feature, dtype=np.bool_)
-    idx = np.empty(feature.shape, np.int32)
+    if out is None:
+        out = (np.empty(feature.shape, np.float32), np.empty(feature.shape, np.int32))
+    d, idx = out
     # ranks: the first pass numbers the True voxels, each thread from its first plane's offset
     rank0 = np.zeros(feature.shape[0] + 1, np.int64)
     np.cumsum(np.count_nonzero(feature.reshape(feature.shape[0], -1), axis=1), out=rank0[1:])
-    d = np.empty(feature.shape, np.float32)
     big = np.float32(float(cap) ** 2 + 1.0)
     passes = [lambda lo, hi: _edt_rows_binary(feature, d, idx, big, lo, hi, rank0)]
     w = int(math.floor(math.sqrt(float(big))))
@@ -614,10 +617,13 @@ def wall_distance(solid: np.ndarray, clip: float, pore: np.ndarray | None = None
     return phase_wall_distance(codes, clip, threads)
 
 
-def phase_wall_distance(codes: np.ndarray, clip: float, threads: int = 1) -> np.ndarray:
+def phase_wall_distance(codes: np.ndarray, clip: float, threads: int = 1,
+                        buffers: tuple[str, str] | None = None) -> np.ndarray:
     """:func:`wall_distance` of a phase-code array (uint8): ``SOLID`` is the solid, ``WETTING``
     and ``NONWETTING`` the pore, any other code unknown. Reads the codes where they are, without
-    a mask per phase."""
+    a mask per phase. With ``buffers`` (two names), the result and the transform's ranks (then
+    the blur's other pass) live in the worker's buffers of those names
+    (:func:`wetpath._parallel.scratch`)."""
     codes = np.ascontiguousarray(codes, dtype=np.uint8)
     bnd, n_bnd, any_solid, any_pore, all_known = _boundary_voxels(codes)
     if n_bnd == 0:
@@ -640,11 +646,12 @@ def phase_wall_distance(codes: np.ndarray, clip: float, threads: int = 1) -> np.
     bnormal = _unit(grad)
     bheight = SOLID_BLUR * special.ndtri(np.clip(p, 1e-6, 1 - 1e-6))
     big = (clip + 2.0) ** 2 + 1.0
-    d2, idx = nearest_feature(bnd, clip + 2.0, threads)
+    d2, idx = nearest_feature(bnd, clip + 2.0, threads, out=None if buffers is None else (
+        scratch(buffers[0], codes.shape, np.float32), scratch(buffers[1], codes.shape, np.int32)))
     del bnd
     out = _plane_distance(d2, idx, codes, bcoord, bnormal, bheight, big, float(clip))
-    del d2, idx                   # peak memory of a chunk's worker: free before the blur
-    return gaussian_blur(out, 1.0, nearest=True, overwrite=True)
+    # the ranks' buffer serves the blur (a worker keeps it; elsewhere it is freed here)
+    return gaussian_blur(out, 1.0, nearest=True, out=out, tmp=idx.view(np.float32))
 
 
 # --------------------------------------------------------------------------------------------------
@@ -1147,30 +1154,26 @@ def _blur_pass(src, dst, flags, w, axis, nearest):  # pragma: no cover
     flags[...] = out_flags
 
 
-def gaussian_blur(arr: np.ndarray, sigma: float, *, nearest: bool,
-                  overwrite: bool = False) -> np.ndarray:
+def gaussian_blur(arr: np.ndarray, sigma: float, *, nearest: bool, out: np.ndarray | None = None,
+                  tmp: np.ndarray | None = None) -> np.ndarray:
     """Gaussian blur (σ voxels, radius 4σ) of a 3-D array as float32: passes along z, y, x of
     :func:`_blur_pass`, equal bit for bit to ``ndimage.gaussian_filter(arr.astype(np.float32),
     sigma, mode="nearest" if nearest else "constant")`` (its test oracle). Without ``nearest``,
-    rows far from any non-zero voxel cost no sums: a cluster's box is mostly empty. With
-    ``overwrite``, a C-contiguous float32 ``arr`` serves as one of the two pass buffers (its
-    content is lost; one array less in memory)."""
+    rows far from any non-zero voxel cost no sums: a cluster's box is mostly empty. ``out``
+    (C-contiguous float32 of ``arr``'s shape; may be ``arr`` itself, whose content is then lost)
+    receives the result, ``tmp`` (likewise) serves as the other pass buffer; the pass along x
+    works row by row, in place."""
     x = np.arange(-int(4.0 * sigma + 0.5), int(4.0 * sigma + 0.5) + 1)
     w = np.exp(-0.5 / sigma**2 * x**2)
     w = w / w.sum()
     a = np.ascontiguousarray(arr)
     flags = a.reshape(a.shape[0], a.shape[1], -1).any(axis=2) if not nearest else \
         np.ones(a.shape[:2], np.bool_)
-    tmp = np.empty(a.shape, np.float32)
-    if overwrite and a is arr and a.dtype == np.float32:
-        _blur_pass(a, tmp, flags, w, 0, nearest)
-        _blur_pass(tmp, a, flags, w, 1, nearest)
-        _blur_pass(a, tmp, flags, w, 2, nearest)
-        return tmp
-    out = np.empty(a.shape, np.float32)
-    _blur_pass(a, out, flags, w, 0, nearest)
-    _blur_pass(out, tmp, flags, w, 1, nearest)
-    _blur_pass(tmp, out, flags, w, 2, nearest)
+    out = np.empty(a.shape, np.float32) if out is None else out
+    tmp = np.empty(a.shape, np.float32) if tmp is None else tmp
+    _blur_pass(a, tmp, flags, w, 0, nearest)
+    _blur_pass(tmp, out, flags, w, 1, nearest)
+    _blur_pass(out, out, flags, w, 2, nearest)
     return out
 
 
@@ -1202,11 +1205,13 @@ def _straddling_cells(f, level):  # pragma: no cover
     return mask, lo, hi
 
 
-def _raw_mesh(indicator: np.ndarray, sigma: float):
+def _raw_mesh(indicator: np.ndarray, sigma: float, buffer: str | None = None):
     """Blur, marching cubes at 0.5, faces wound outward; with the unique edges. Marching cubes
     visits only the cells the surface can cross (same mesh, about half the time on a porous
-    medium: most cells of a cluster's box lie wholly inside or outside it)."""
-    blur = gaussian_blur(indicator, sigma, nearest=False)
+    medium: most cells of a cluster's box lie wholly inside or outside it). With ``buffer``, the
+    blur lies in the worker's buffer of that name (:func:`wetpath._parallel.scratch`)."""
+    out = None if buffer is None else scratch(buffer, indicator.shape, np.float32)
+    blur = gaussian_blur(indicator, sigma, nearest=False, out=out)
     cells, lo, hi = _straddling_cells(blur, np.float32(0.5))
     if hi <= 0.5 or lo >= 0.5:
         return np.zeros((0, 3)), np.zeros((0, 3), np.int64), np.zeros((0, 2), np.int64), None
@@ -1462,14 +1467,15 @@ def _face_reference(verts, faces, fnorm, farea, lab, f_own, d, grad):
 
 
 def _cluster_box_sums(lab, clu, cid, sd, lo, own_lo, own_hi, sigma, levels, key_dims,
-                      contact=None):
+                      contact=None, blur_buffer=None):
     """Band sums of cluster ``cid`` inside one box.
 
     ``lab``/``clu``: phase codes and cluster ids of the box (``_OUTSIDE`` beyond the array);
     ``sd``: wall distance of the box; ``lo``: global coordinate of the box origin (padded frame
     shifted so that the array starts at 0); elements whose lattice cell lies in [own_lo, own_hi)
     are counted. ``contact``, if given, is called with the smoothed mesh and its wall distances
-    (see :func:`mesh_sums`) and its result is stored under ``"contact"``.
+    (see :func:`mesh_sums`) and its result is stored under ``"contact"``. ``blur_buffer``: the
+    worker's buffer that holds the blurred indicator (see :func:`_raw_mesh`).
     """
     nl = len(levels)
     res = {"A": np.zeros(nl), "K": np.zeros(nl), "Lid": np.zeros(nl), "L": np.zeros(nl),
@@ -1477,7 +1483,7 @@ def _cluster_box_sums(lab, clu, cid, sd, lo, own_lo, own_hi, sigma, levels, key_
            "kA": 0.0, "k2A": 0.0, "Anw_raw": 0.0, "Ans_raw": 0.0, "wA": 0.0, "cosA": 0.0,
            "cosW": 0.0, "dmax": -np.inf,
            "segs": np.zeros((0, 4), np.int64)}
-    verts0, faces, edges, face_edges = _raw_mesh(clu == cid, sigma)
+    verts0, faces, edges, face_edges = _raw_mesh(clu == cid, sigma, blur_buffer)
     if len(faces) == 0:
         return res
     verts = _taubin_kernel(verts0.copy(), edges, TAUBIN_ITERATIONS, TAUBIN_LAMBDA, TAUBIN_MU)
@@ -1605,14 +1611,16 @@ def _parts_within(shape, least, halo: int, pad: int, max_box: int,
     return best[1]
 
 
-def _extract(arr, lo, hi, fill) -> np.ndarray:
-    """Sub-array [lo, hi) of ``arr`` (may reach outside; filled with ``fill`` there).
+def _extract(arr, lo, hi, fill, name: str | None = None) -> np.ndarray:
+    """Sub-array [lo, hi) of ``arr`` (may reach outside; filled with ``fill`` there), in the
+    worker's buffer ``name`` (:func:`wetpath._parallel.scratch`) if given.
 
     ``arr`` is a numpy array or any array that :class:`wetpath._lattice._Source` reads (zarr,
     dask): only the box is read, a zarr array decodes straight into the result.
     """
     shape = tuple(int(h - l) for l, h in zip(lo, hi, strict=True))
-    out = np.full(shape, fill, arr.dtype)
+    out = np.empty(shape, arr.dtype) if name is None else scratch(name, shape, arr.dtype)
+    out.fill(fill)
     src = tuple(slice(max(int(l), 0), min(int(h), n)) for l, h, n in zip(lo, hi, arr.shape,
                                                                           strict=True))
     dst = tuple(slice(s.start - int(l), s.stop - int(l)) for s, l in zip(src, lo, strict=True))
@@ -1893,9 +1901,12 @@ def _chunk_sums(labels, clusters, own_lo, own_hi, ctx: _ChunkContext, pool=None)
     shape = np.array(labels.shape)
     blo = np.maximum(own_lo - halo, -pad)
     bhi = np.minimum(own_hi + halo, shape + pad)
-    lab_c = _extract(labels, blo, bhi, _OUTSIDE)
-    sd_c = phase_wall_distance(lab_c, _distance_clip(ctx.sigma), threads=ctx.threads)
-    clu_c = _extract(clusters, blo, bhi, 0)
+    # box-sized arrays in buffers that a worker keeps from chunk to chunk (the distance
+    # transform's ranks and then each cluster's blurred indicator share one)
+    lab_c = _extract(labels, blo, bhi, _OUTSIDE, name="phases")
+    sd_c = phase_wall_distance(lab_c, _distance_clip(ctx.sigma), threads=ctx.threads,
+                               buffers=("wall-distance", "box-scratch"))
+    clu_c = _extract(clusters, blo, bhi, 0, name="clusters")
 
     def work(cid):
         # the cluster's part of the chunk box: its voxels and ``margin`` around them (all of its
@@ -1907,7 +1918,7 @@ def _chunk_sums(labels, clusters, own_lo, own_hi, ctx: _ChunkContext, pool=None)
         return cid, _cluster_box_sums(lab_c[sl], clu_c[sl], cid, sd_c[sl],
                                       (lo + pad + 1).astype(float), own_lo + pad + 1,
                                       own_hi + pad + 1, ctx.sigma, ctx.levels, ctx.key_dims,
-                                      ctx.contact)
+                                      ctx.contact, "box-scratch")
 
     # largest boxes first so that the threads finish together
     ids = ids[np.argsort(-np.prod(bb[ids - 1, 3:] - bb[ids - 1, :3], axis=1), kind="stable")]
