@@ -621,8 +621,8 @@ def phase_wall_distance(codes: np.ndarray, clip: float, threads: int = 1,
                         buffers: tuple[str, str] | None = None) -> np.ndarray:
     """:func:`wall_distance` of a phase-code array (uint8): ``SOLID`` is the solid, ``WETTING``
     and ``NONWETTING`` the pore, any other code unknown. Reads the codes where they are, without
-    a mask per phase. With ``buffers`` (two names), the result and the transform's ranks (then
-    the blur's other pass) live in the worker's buffers of those names
+    a mask per phase. With ``buffers`` (two names), the unsmoothed distances and the transform's
+    ranks, which the result then replaces, live in the worker's buffers of those names
     (:func:`wetpath._parallel.scratch`)."""
     codes = np.ascontiguousarray(codes, dtype=np.uint8)
     bnd, n_bnd, any_solid, any_pore, all_known = _boundary_voxels(codes)
@@ -650,8 +650,8 @@ def phase_wall_distance(codes: np.ndarray, clip: float, threads: int = 1,
         scratch(buffers[0], codes.shape, np.float32), scratch(buffers[1], codes.shape, np.int32)))
     del bnd
     out = _plane_distance(d2, idx, codes, bcoord, bnormal, bheight, big, float(clip))
-    # the ranks' buffer serves the blur (a worker keeps it; elsewhere it is freed here)
-    return gaussian_blur(out, 1.0, nearest=True, out=out, tmp=idx.view(np.float32))
+    # the result lies in the ranks' buffer (in a worker; elsewhere the other one is freed here)
+    return gaussian_blur(out, 1.0, nearest=True, out=idx.view(np.float32))
 
 
 # --------------------------------------------------------------------------------------------------
@@ -1096,28 +1096,54 @@ def _level_curves_kernel(verts, fe, edges, edge_own, d, nu, normal, face_own,
 
 
 @njit(cache=True, nogil=True)
-def _blur_pass(src, dst, flags, w, axis, nearest):  # pragma: no cover
-    """One pass of a separable Gaussian blur along ``axis`` (0, 1 or 2) of a C-ordered 3-D array,
-    float64 sums of float32 results with the arithmetic of ``ndimage.correlate1d`` (symmetric
-    weights ``w``, outermost taps first; ``nearest``: edge values continued, else zeros beyond), so
-    bit for bit equal to it. ``flags[i, j]`` marks the x rows (i, j) of ``src`` that may hold a
-    non-zero value; rows of ``dst`` that cannot are written as zeros without sums (without
-    ``nearest``), and the flags are updated to ``dst``'s rows. Rows along z and y are summed as
-    whole contiguous x rows."""
+def _blur_zy(src, dst, flags, w, nearest):  # pragma: no cover
+    """The passes along z and then y of a separable Gaussian blur of a C-ordered 3-D array, plane
+    by plane through one plane buffer (no array-sized intermediate): float64 sums of float32
+    results with the arithmetic of ``ndimage.correlate1d`` (symmetric weights ``w``, outermost
+    taps first; ``nearest``: edge values continued, else zeros beyond), so bit for bit equal to
+    it. ``flags[i, j]`` marks the x rows (i, j) of ``src`` that may hold a non-zero value; rows
+    that cannot are written as zeros without sums (without ``nearest``), and the flags are
+    updated to ``dst``'s rows. Rows are summed as whole contiguous x rows."""
     nz, ny, nx = src.shape
     r = w.shape[0] // 2
-    n = src.shape[axis]
+    plane = np.empty((ny, nx), np.float32)     # the pass along z of plane i
+    live_z = np.empty(ny, np.bool_)
     acc = np.empty(nx)
-    line = np.empty(n + 2 * r)
     zero = np.zeros(nx, src.dtype)
+    zero32 = np.zeros(nx, np.float32)
     out_flags = np.zeros(flags.shape, np.bool_)
     for i in range(nz):
         for j in range(ny):
-            t = i if axis == 0 else j
-            live = nearest or (axis == 2 and flags[i, j])
-            if not live and axis < 2:
-                for q in range(max(t - r, 0), min(t + r + 1, n)):
-                    if (axis == 0 and flags[q, j]) or (axis == 1 and flags[i, q]):
+            live = nearest
+            if not live:
+                for q in range(max(i - r, 0), min(i + r + 1, nz)):
+                    if flags[q, j]:
+                        live = True
+                        break
+            live_z[j] = live
+            if not live:
+                for k in range(nx):
+                    plane[j, k] = 0.0
+                continue
+            centre = src[i, j]
+            for k in range(nx):
+                acc[k] = np.float64(centre[k]) * w[r]
+            for q in range(r, 0, -1):
+                lo, hi = i - q, i + q
+                if nearest:
+                    lo, hi = max(lo, 0), min(hi, nz - 1)
+                row_lo = zero if lo < 0 else src[lo, j]
+                row_hi = zero if hi >= nz else src[hi, j]
+                wq = w[r - q]
+                for k in range(nx):
+                    acc[k] += (np.float64(row_lo[k]) + np.float64(row_hi[k])) * wq
+            for k in range(nx):
+                plane[j, k] = acc[k]
+        for j in range(ny):
+            live = nearest
+            if not live:
+                for q in range(max(j - r, 0), min(j + r + 1, ny)):
+                    if live_z[q]:
                         live = True
                         break
             out_flags[i, j] = live
@@ -1125,44 +1151,57 @@ def _blur_pass(src, dst, flags, w, axis, nearest):  # pragma: no cover
                 for k in range(nx):
                     dst[i, j, k] = 0.0
                 continue
-            if axis == 2:
+            for k in range(nx):
+                acc[k] = np.float64(plane[j, k]) * w[r]
+            for q in range(r, 0, -1):
+                lo, hi = j - q, j + q
+                if nearest:
+                    lo, hi = max(lo, 0), min(hi, ny - 1)
+                row_lo = zero32 if lo < 0 else plane[lo]
+                row_hi = zero32 if hi >= ny else plane[hi]
+                wq = w[r - q]
                 for k in range(nx):
-                    line[r + k] = src[i, j, k]
-                for k in range(r):
-                    line[k] = line[r] if nearest else 0.0
-                    line[r + nx + k] = line[r + nx - 1] if nearest else 0.0
-                for k in range(nx):
-                    acc[k] = line[r + k] * w[r]
-                for q in range(r, 0, -1):
-                    for k in range(nx):
-                        acc[k] += (line[r + k - q] + line[r + k + q]) * w[r - q]
-            else:
-                centre = src[i, j]
-                for k in range(nx):
-                    acc[k] = np.float64(centre[k]) * w[r]
-                for q in range(r, 0, -1):
-                    lo, hi = t - q, t + q
-                    if nearest:
-                        lo, hi = max(lo, 0), min(hi, n - 1)
-                    row_lo = zero if lo < 0 else (src[lo, j] if axis == 0 else src[i, lo])
-                    row_hi = zero if hi >= n else (src[hi, j] if axis == 0 else src[i, hi])
-                    wq = w[r - q]
-                    for k in range(nx):
-                        acc[k] += (np.float64(row_lo[k]) + np.float64(row_hi[k])) * wq
+                    acc[k] += (np.float64(row_lo[k]) + np.float64(row_hi[k])) * wq
             for k in range(nx):
                 dst[i, j, k] = acc[k]
     flags[...] = out_flags
 
 
-def gaussian_blur(arr: np.ndarray, sigma: float, *, nearest: bool, out: np.ndarray | None = None,
-                  tmp: np.ndarray | None = None) -> np.ndarray:
-    """Gaussian blur (σ voxels, radius 4σ) of a 3-D array as float32: passes along z, y, x of
-    :func:`_blur_pass`, equal bit for bit to ``ndimage.gaussian_filter(arr.astype(np.float32),
-    sigma, mode="nearest" if nearest else "constant")`` (its test oracle). Without ``nearest``,
-    rows far from any non-zero voxel cost no sums: a cluster's box is mostly empty. ``out``
-    (C-contiguous float32 of ``arr``'s shape; may be ``arr`` itself, whose content is then lost)
-    receives the result, ``tmp`` (likewise) serves as the other pass buffer; the pass along x
-    works row by row, in place."""
+@njit(cache=True, nogil=True)
+def _blur_x(arr, flags, w, nearest):  # pragma: no cover
+    """The pass along x of a separable Gaussian blur, in place, row by row, with the arithmetic
+    of :func:`_blur_zy` (bit for bit ``ndimage.correlate1d``); rows not flagged are left as they
+    are (zeros, without ``nearest``)."""
+    nz, ny, nx = arr.shape
+    r = w.shape[0] // 2
+    acc = np.empty(nx)
+    line = np.empty(nx + 2 * r)
+    for i in range(nz):
+        for j in range(ny):
+            if not (nearest or flags[i, j]):
+                continue
+            for k in range(nx):
+                line[r + k] = arr[i, j, k]
+            for k in range(r):
+                line[k] = line[r] if nearest else 0.0
+                line[r + nx + k] = line[r + nx - 1] if nearest else 0.0
+            for k in range(nx):
+                acc[k] = line[r + k] * w[r]
+            for q in range(r, 0, -1):
+                for k in range(nx):
+                    acc[k] += (line[r + k - q] + line[r + k + q]) * w[r - q]
+            for k in range(nx):
+                arr[i, j, k] = acc[k]
+
+
+def gaussian_blur(arr: np.ndarray, sigma: float, *, nearest: bool,
+                  out: np.ndarray | None = None) -> np.ndarray:
+    """Gaussian blur (σ voxels, radius 4σ) of a 3-D array as float32: passes along z and y
+    (:func:`_blur_zy`), then x (:func:`_blur_x`), equal bit for bit to
+    ``ndimage.gaussian_filter(arr.astype(np.float32), sigma, mode="nearest" if nearest else
+    "constant")`` (its test oracle). Without ``nearest``, rows far from any non-zero voxel cost
+    no sums: a cluster's box is mostly empty. ``out`` (C-contiguous float32 of ``arr``'s shape,
+    not ``arr`` itself) receives the result; no other array-sized buffer is used."""
     x = np.arange(-int(4.0 * sigma + 0.5), int(4.0 * sigma + 0.5) + 1)
     w = np.exp(-0.5 / sigma**2 * x**2)
     w = w / w.sum()
@@ -1170,10 +1209,10 @@ def gaussian_blur(arr: np.ndarray, sigma: float, *, nearest: bool, out: np.ndarr
     flags = a.reshape(a.shape[0], a.shape[1], -1).any(axis=2) if not nearest else \
         np.ones(a.shape[:2], np.bool_)
     out = np.empty(a.shape, np.float32) if out is None else out
-    tmp = np.empty(a.shape, np.float32) if tmp is None else tmp
-    _blur_pass(a, tmp, flags, w, 0, nearest)
-    _blur_pass(tmp, out, flags, w, 1, nearest)
-    _blur_pass(out, out, flags, w, 2, nearest)
+    if np.shares_memory(out, a):
+        raise ValueError("gaussian_blur: out must not share memory with the input")
+    _blur_zy(a, out, flags, w, nearest)
+    _blur_x(out, flags, w, nearest)
     return out
 
 
@@ -1901,11 +1940,11 @@ def _chunk_sums(labels, clusters, own_lo, own_hi, ctx: _ChunkContext, pool=None)
     shape = np.array(labels.shape)
     blo = np.maximum(own_lo - halo, -pad)
     bhi = np.minimum(own_hi + halo, shape + pad)
-    # box-sized arrays in buffers that a worker keeps from chunk to chunk (the distance
-    # transform's ranks and then each cluster's blurred indicator share one)
+    # box-sized arrays in buffers that a worker keeps from chunk to chunk: the wall distance
+    # ends in the second one, the first then holds each cluster's blurred indicator
     lab_c = _extract(labels, blo, bhi, _OUTSIDE, name="phases")
     sd_c = phase_wall_distance(lab_c, _distance_clip(ctx.sigma), threads=ctx.threads,
-                               buffers=("wall-distance", "box-scratch"))
+                               buffers=("box-a", "box-b"))
     clu_c = _extract(clusters, blo, bhi, 0, name="clusters")
 
     def work(cid):
@@ -1918,7 +1957,7 @@ def _chunk_sums(labels, clusters, own_lo, own_hi, ctx: _ChunkContext, pool=None)
         return cid, _cluster_box_sums(lab_c[sl], clu_c[sl], cid, sd_c[sl],
                                       (lo + pad + 1).astype(float), own_lo + pad + 1,
                                       own_hi + pad + 1, ctx.sigma, ctx.levels, ctx.key_dims,
-                                      ctx.contact, "box-scratch")
+                                      ctx.contact, "box-a")
 
     # largest boxes first so that the threads finish together
     ids = ids[np.argsort(-np.prod(bb[ids - 1, 3:] - bb[ids - 1, :3], axis=1), kind="stable")]
