@@ -1295,8 +1295,6 @@ def _edges_kernel(faces, nv):  # pragma: no cover
             high[fill[lo]] = max(a, b)
             side[fill[lo]] = 3 * f + k
             fill[lo] += 1
-    edges = np.empty((3 * nf, 2), np.int64)
-    face_edges = np.empty(3 * nf, np.int64)
     ne = 0
     for v in range(nv):
         s, e = start[v], start[v + 1]
@@ -1312,12 +1310,23 @@ def _edges_kernel(faces, nv):  # pragma: no cover
         prev = -1
         for i in range(s, e):
             if high[i] != prev:
+                ne += 1
+                prev = high[i]
+    # counted first, so that the edges are allocated once at their size (a mesh of millions of
+    # faces: every array allocated is memory first touched again)
+    edges = np.empty((ne, 2), np.int64)
+    face_edges = np.empty(3 * nf, np.int64)
+    ne = 0
+    for v in range(nv):
+        prev = -1
+        for i in range(start[v], start[v + 1]):
+            if high[i] != prev:
                 edges[ne, 0] = v
                 edges[ne, 1] = high[i]
                 ne += 1
                 prev = high[i]
             face_edges[side[i]] = ne - 1
-    return edges[:ne].copy(), face_edges.reshape(nf, 3)
+    return edges, face_edges.reshape(nf, 3)
 
 
 @njit(cache=True, nogil=True, inline="always")
