@@ -1834,7 +1834,7 @@ def mesh_sums(labels, *, clusters=None, connectivity: int = 26, sigma: float = 1
     Results do not depend on where the arrays live.
 
     ``max_box`` (voxels) bounds the box (core ± halo) that one worker holds, and with it the
-    worker's memory (~24 bytes per box voxel at the peak, with the percolating cluster's mesh;
+    worker's memory (~27 bytes per box voxel at the peak, with the percolating cluster's mesh;
     see ``MESH_BOX_VOXELS`` in :mod:`wetpath._stages`): the number of parts per axis is then
     chosen to mesh the least volume, halos included, with no box larger (and no core edge longer
     than ``chunks``, if given).

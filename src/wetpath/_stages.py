@@ -29,9 +29,10 @@ __all__ = ["label_step", "measure_step", "track_step", "increment_step", "collec
 # fewer chunks than workers is cut into one slab along z per worker (from 160³ up; smaller ones
 # are meshed whole)
 MESH_CHUNKS = 256
-# largest chunk box (core ± halo, voxels) one mesh worker holds: its peak is ~24 bytes per box
-# voxel (the percolating cluster's mesh with the box's codes, ids and wall distance; 0.55 GB for a
-# 283³ box) over its own ~0.1 GB, so that the stage stays under 2 GB with 2 workers whatever the
+# largest chunk box (core ± halo, voxels) one mesh worker holds: its peak is ~27 bytes per box
+# voxel (the percolating cluster's mesh with the buffers the worker keeps: the box's codes, ids,
+# wall distance and blur; 0.62 GB for a 285³ box) over its own ~0.1 GB, so that the stage stays
+# under 2 GB with 2 workers (1.70 GB measured at 1024³) whatever the
 # volume; the parts per axis are chosen to mesh the least volume under it (512³: 2 × 2 × 2 chunks,
 # 1.41 voxels meshed per voxel; 1024³: 4 × 4 × 5)
 MESH_BOX_VOXELS = 24_000_000
