@@ -1,13 +1,8 @@
-"""Forked workers: their results come back in task order, and the buffers a worker keeps; the
-allocator settings of a streaming pass."""
-
-import platform
-import resource
+"""Forked workers: their results come back in task order, and the buffers a worker keeps."""
 
 import numpy as np
-import pytest
 
-from wetpath._parallel import map_forked, pass_in_heap, scratch
+from wetpath._parallel import map_forked, scratch
 
 
 def _buffer(n: int, fill: float):
@@ -28,25 +23,3 @@ def test_outside_workers_every_call_is_a_new_array():
     a, b = scratch("test", (3, 4), np.int32), scratch("test", (3, 4), np.int32)
     assert a.shape == (3, 4) and a.dtype == np.int32 and a.flags.c_contiguous
     assert not np.shares_memory(a, b)
-
-
-def _faults_of_second_block(n: int) -> int:
-    a = np.ones(n)
-    del a
-    before = resource.getrusage(resource.RUSAGE_SELF).ru_minflt
-    b = np.ones(n)
-    after = resource.getrusage(resource.RUSAGE_SELF).ru_minflt
-    del b
-    return after - before
-
-
-@pytest.mark.skipif(platform.libc_ver()[0] != "glibc", reason="tunes glibc's allocator only")
-def test_a_pass_reuses_freed_blocks():
-    # a 16 MiB block (the size zarr decodes a stored chunk into) freed and allocated again: in a
-    # pass it is the same heap memory, its 4096 pages already touched (outside a pass glibc maps
-    # such a block afresh); nested passes keep the settings until the outermost one ends
-    with pass_in_heap():
-        with pass_in_heap():
-            pass
-        inside = _faults_of_second_block(1 << 21)
-    assert inside < 64

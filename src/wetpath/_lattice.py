@@ -45,7 +45,6 @@ import pandas as pd
 from numba import njit
 
 from ._errors import WetpathError
-from ._parallel import pass_in_heap
 
 __all__ = ["lattice_measures", "lattice_histogram", "lattice_histogram_reference",
            "euler_lut", "CUBE_CORNERS", "NBINS"]
@@ -421,17 +420,16 @@ def run_parallel(items: Iterator, work: Callable, threads: int | None,
         finally:
             free.put(w)
 
-    with pass_in_heap():     # stored chunks decode into reused heap blocks
-        if n == 1:
-            return [work(0, item) for item in items]
-        limit = max_pending or n
-        futures: list[Future] = []
-        with ThreadPoolExecutor(n) as pool:
-            for k, item in enumerate(items):
-                futures.append(pool.submit(run, item))
-                if k >= limit:
-                    futures[k - limit].result()     # wait for the oldest, not for any one
-            return [f.result() for f in futures]
+    if n == 1:
+        return [work(0, item) for item in items]
+    limit = max_pending or n
+    futures: list[Future] = []
+    with ThreadPoolExecutor(n) as pool:
+        for k, item in enumerate(items):
+            futures.append(pool.submit(run, item))
+            if k >= limit:
+                futures[k - limit].result()     # wait for the oldest, not for any one
+        return [f.result() for f in futures]
 
 
 def resolve_threads(threads: int | None) -> int:

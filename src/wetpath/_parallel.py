@@ -24,33 +24,25 @@ peak 1.5 GB.
 
 from __future__ import annotations
 
-import contextlib
 import ctypes
 import itertools
 import math
 import multiprocessing as mp
 import threading
-from collections.abc import Callable, Iterable, Iterator, Sequence
+from collections.abc import Callable, Iterable, Sequence
 from concurrent.futures import ProcessPoolExecutor
 
 import numpy as np
 
 MMAP_THRESHOLD = 1 << 22
 """Bytes from which a worker's allocations are mapped (and unmapped when freed) on their own."""
-_M_MMAP_THRESHOLD = -3      # mallopt parameter numbers (glibc malloc.h)
-_M_TRIM_THRESHOLD = -1
-_TRIM_THRESHOLD_DEFAULT = 128 * 1024   # glibc's default M_TRIM_THRESHOLD (bytes)
-PASS_THRESHOLD = 1 << 26
-"""Bytes below which blocks come from the heap, and above which freed heap memory is given
-back, while a streaming pass runs (:func:`pass_in_heap`)."""
+_M_MMAP_THRESHOLD = -3      # mallopt parameter number (glibc malloc.h)
 
 _INPUTS: tuple = ()
 """The arrays of the running :func:`map_forked` call, inherited by its workers."""
 _KEPT: dict | None = None
 """Buffers that a :func:`map_forked` worker keeps from task to task (``None`` elsewhere)."""
 _LOCK = threading.Lock()
-_PASS_LOCK = threading.Lock()
-_PASS_DEPTH = 0
 
 
 def _glibc(name: str, *args: int) -> None:
@@ -67,36 +59,6 @@ def fix_mmap_threshold() -> None:
     run in every worker, and by stages that gather many results of varying size (the parent of
     the mesh workers held 0.25–0.4 GB of freed blocks at 512³ without it, 0.15 GB with it)."""
     _glibc("mallopt", _M_MMAP_THRESHOLD, MMAP_THRESHOLD)
-
-
-@contextlib.contextmanager
-def pass_in_heap() -> Iterator[None]:
-    """Within it, blocks up to :data:`PASS_THRESHOLD` come from glibc's heap and stay there when
-    freed (mmap and trim thresholds raised); on leaving, the heap's free pages are given back
-    (``malloc_trim``) and the thresholds return to :data:`MMAP_THRESHOLD` and glibc's default.
-
-    For streaming passes over stored arrays: zarr decodes every stored chunk into a new block
-    (8–16 MB for the workflow's chunks), which the default settings map afresh and unmap, so every
-    page of it is touched anew. Measured on the development VM, reading a 284³ box of phase codes
-    and cluster ids from the stores: 76.6 k minor page faults and 0.19 s of system time per box
-    without, 12.8 k and 0.06 s within (the freed blocks reused). Nested and concurrent uses are
-    counted; the last one to leave restores the settings. Elsewhere than glibc, nothing.
-    """
-    global _PASS_DEPTH
-    with _PASS_LOCK:
-        _PASS_DEPTH += 1
-        if _PASS_DEPTH == 1:
-            _glibc("mallopt", _M_MMAP_THRESHOLD, PASS_THRESHOLD)
-            _glibc("mallopt", _M_TRIM_THRESHOLD, PASS_THRESHOLD)
-    try:
-        yield
-    finally:
-        with _PASS_LOCK:
-            _PASS_DEPTH -= 1
-            if _PASS_DEPTH == 0:
-                _glibc("mallopt", _M_MMAP_THRESHOLD, MMAP_THRESHOLD)
-                _glibc("mallopt", _M_TRIM_THRESHOLD, _TRIM_THRESHOLD_DEFAULT)
-                _glibc("malloc_trim", 0)
 
 
 def _start_worker() -> None:

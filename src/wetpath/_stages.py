@@ -11,7 +11,6 @@ from __future__ import annotations
 import json
 import os
 from collections.abc import Mapping, Sequence
-from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
@@ -162,52 +161,46 @@ def measure_step(store: str | os.PathLike, clusters_store: str | os.PathLike,
     # MESH_BOX_VOXELS whatever the volume)
     labels = opened.labels
     clusters = open_clusters(clusters_store)
+    lattice = lattice_measures(labels, h, threads=threads)
     # chunked meshing bounds memory (a percolating cluster's box is the whole volume); the sums
     # agree with whole-cluster meshing to ~1e-6 relative
     # (the geometric angles come from the same meshes)
     table, points = cluster_tables(labels, h, clusters, sigma=sigma, chunks=MESH_CHUNKS,
                                    threads=threads, geometric=geometric,
                                    max_box=MESH_BOX_VOXELS)
-    # the whole-sample lattice pass and the states with the fluid boundary moved by ±1 voxel
-    # (slab by slab as the pass reads them: equal to perturbing the whole) stream the store on a
-    # side thread while this one assembles and writes the cluster and point tables (after the
-    # mesh workers have finished: their slab buffers do not add to the mesh stage's peak; the
-    # stores' codes were checked by the per-cluster pass)
-    kinds = ("dilated", "eroded") if perturb else ()
-    paths = measure_paths(out_folder, step)
-    with ThreadPoolExecutor(1) as side:
-        passes = [side.submit(lattice_measures, view, h, threads=threads)
-                  for view in [labels, *(PerturbedView(labels, kind) for kind in kinds)]]
-        topo = topological_from_clusters(table)
-        topo["topo_flag"] = topo.pop("flag")
-        per_cluster = topo["clusters"] if len(topo["clusters"]) else table
-        geo_row = {}
-        if geometric:
-            geo = summarise_geometric(points)
-            geo_row = {"theta_geom_median_deg": geo["median_deg"],
-                       "theta_geom_q25_deg": geo["q25_deg"], "theta_geom_q75_deg": geo["q75_deg"],
-                       "theta_geom_mean_deg": geo["mean_deg"], "theta_geom_sem_deg": geo["sem_deg"],
-                       "theta_geom_count": geo["count"]}
-            per = geo["clusters"]
-            if len(per):
-                keep = ["cluster", "count", "median_deg", "q25_deg", "q75_deg", "mean_deg",
-                        "sem_deg"]
-                per = per[[c for c in keep if c in per.columns]].rename(
-                    columns={c: f"theta_geom_{c}" for c in keep[1:]})
-                per_cluster = per_cluster.merge(per, on="cluster", how="left")
-            atomic_write_table(points, paths["points"])
-        else:
-            atomic_write_table(pd.DataFrame(columns=["cluster", "z", "y", "x", "theta_deg"]),
-                               paths["points"])
-        lattice, *moved = [p.result() for p in passes]
     state = state_from_clusters(lattice, table)
-    row = {"step": step, "voxel_size_um": h, **_scalars(state), **_scalars(topo), **geo_row}
+    topo = topological_from_clusters(table)
+    topo["topo_flag"] = topo.pop("flag")
+    row = {"step": step, "voxel_size_um": h, **_scalars(state), **_scalars(topo)}
     provenance = _code_columns("measure", {"sigma": sigma, "connectivity": connectivity,
                                            "perturb": perturb, "geometric": geometric})
-    # the ±1-voxel shift stands in for segmentation error of areas and volumes; the curvature of
-    # the unperturbed state is kept (its shift, ~2/R², is negligible)
-    perturbed = [{"perturbation": kind, **_scalars(m), "curvature_nw": state["curvature_nw"]}
-                 for kind, m in zip(kinds, moved, strict=True)]
+    paths = measure_paths(out_folder, step)
+    per_cluster = topo["clusters"] if len(topo["clusters"]) else table
+    if geometric:
+        geo = summarise_geometric(points)
+        row.update({"theta_geom_median_deg": geo["median_deg"], "theta_geom_q25_deg":
+                    geo["q25_deg"], "theta_geom_q75_deg": geo["q75_deg"],
+                    "theta_geom_mean_deg": geo["mean_deg"], "theta_geom_sem_deg": geo["sem_deg"],
+                    "theta_geom_count": geo["count"]})
+        per = geo["clusters"]
+        if len(per):
+            keep = ["cluster", "count", "median_deg", "q25_deg", "q75_deg", "mean_deg", "sem_deg"]
+            per = per[[c for c in keep if c in per.columns]].rename(
+                columns={c: f"theta_geom_{c}" for c in keep[1:]})
+            per_cluster = per_cluster.merge(per, on="cluster", how="left")
+        atomic_write_table(points, paths["points"])
+    else:
+        atomic_write_table(pd.DataFrame(columns=["cluster", "z", "y", "x", "theta_deg"]),
+                           paths["points"])
+    perturbed = []
+    if perturb:
+        for kind in ("dilated", "eroded"):
+            # perturbed slab by slab as the lattice pass reads it (equal to perturbing the whole)
+            m = lattice_measures(PerturbedView(labels, kind), h, threads=threads)
+            # the ±1-voxel shift stands in for segmentation error of areas and volumes; the
+            # curvature of the unperturbed state is kept (its shift, ~2/R², is negligible)
+            perturbed.append({"perturbation": kind, **_scalars(m),
+                              "curvature_nw": state["curvature_nw"]})
     atomic_write_table(pd.DataFrame(perturbed), paths["perturbed"])
     atomic_write_table(state["blocks"], paths["blocks"])
     atomic_write_table(per_cluster, paths["clusters"])
